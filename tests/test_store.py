@@ -1,0 +1,104 @@
+"""Store: schema creation, migrations, atomic results, lock handling."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import pandas as pd
+import pytest
+
+from tubetrack import store
+from tubetrack.errors import NotFoundError, StoreBusyError, StoreError
+
+
+def test_schema_created_at_latest_version(mem_store):
+    assert store.schema_version(mem_store) == store.SCHEMA_VERSION
+    tables = {r[0] for r in mem_store.execute("SHOW TABLES").fetchall()}
+    assert set(store.CANONICAL_TABLES) <= tables
+
+
+def test_every_measurement_column_carries_a_unit(mem_store):
+    cols = mem_store.execute(
+        "SELECT column_name FROM information_schema.columns "
+        "WHERE table_name IN ('exposures','calibrations') AND data_type = 'DOUBLE'"
+    ).fetchall()
+    units = ("_kv", "_ma", "_s", "_mas", "_a", "_v")
+    assert cols and all(c[0].endswith(units) for c in cols), cols
+
+
+def test_reopen_does_not_reapply_migrations(db_path):
+    con = store.connect(db_path)
+    n = con.execute("SELECT count(*) FROM schema_version").fetchone()[0]
+    con.close()
+    con = store.connect(db_path)
+    assert con.execute("SELECT count(*) FROM schema_version").fetchone()[0] == n
+    con.close()
+
+
+def test_newer_schema_is_refused(db_path):
+    con = store.connect(db_path)
+    con.execute("INSERT INTO schema_version VALUES (999, now()::TIMESTAMP, 'future')")
+    con.close()
+    with pytest.raises(StoreError, match="newer than this tubetrack"):
+        store.connect(db_path)
+
+
+def test_read_only_missing_store_says_next_step(tmp_path):
+    with pytest.raises(StoreError, match="tubetrack ingest"):
+        store.connect(tmp_path / "nope.duckdb", read_only=True)
+
+
+def test_view_attributes_tube_by_install_dates(mem_store):
+    mem_store.execute(
+        "INSERT INTO tubes (tube_id, system_id, installed_at_utc, removed_at_utc) VALUES "
+        "('T1','S1','2020-01-01','2021-01-01'), ('T2','S1','2021-01-01', NULL)"
+    )
+    mem_store.execute(
+        "INSERT INTO exposures (timestamp_utc, system_id, focal_spot, tube_voltage_kv, "
+        "tube_current_ma) VALUES ('2020-06-01','S1','large',80,200), "
+        "('2021-06-01','S1','large',80,200)"
+    )
+    got = mem_store.execute(
+        "SELECT tube_id FROM v_exposures ORDER BY timestamp_utc"
+    ).fetchall()
+    assert got == [("T1",), ("T2",)]
+
+
+def test_write_results_replaces_and_registers(mem_store):
+    store.write_results(mem_store, "result_demo", pd.DataFrame({"x": [1, 2, 3]}), kind="t")
+    store.write_results(mem_store, "result_demo", pd.DataFrame({"x": [7]}), kind="t")
+    assert store.read_results(mem_store, "result_demo")["x"].tolist() == [7]
+    runs = mem_store.execute("SELECT rows FROM analysis_runs ORDER BY started_at_utc").fetchall()
+    assert [r[0] for r in runs] == [3, 1]
+
+
+def test_write_results_failure_keeps_old_table(mem_store):
+    store.write_results(mem_store, "result_demo", pd.DataFrame({"x": [1]}), kind="t")
+    with pytest.raises(ValueError):
+        store.write_results(mem_store, "bad name; drop", pd.DataFrame({"x": [2]}), kind="t")
+    assert store.read_results(mem_store, "result_demo")["x"].tolist() == [1]
+
+
+def test_missing_results_table_is_not_found(mem_store):
+    with pytest.raises(NotFoundError, match="run the analysis first"):
+        store.read_results(mem_store, "result_nothing")
+
+
+def test_second_writer_waits_then_fails_clearly(db_path):
+    store.connect(db_path).close()
+    holder = subprocess.Popen(
+        [sys.executable, "-c",
+         "import sys,time,duckdb; c=duckdb.connect(sys.argv[1]); print('held', flush=True); "
+         "time.sleep(30)", str(db_path)],
+        stdout=subprocess.PIPE, text=True,
+    )
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        messages = []
+        with pytest.raises(StoreBusyError, match="in use by another tubetrack process"):
+            store.connect(db_path, wait_s=1.0, on_wait=messages.append)
+        assert messages and "waiting" in messages[0]
+    finally:
+        holder.kill()
+        holder.wait()
