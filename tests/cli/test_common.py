@@ -11,7 +11,13 @@ import typer
 from typer.testing import CliRunner
 
 from tubetrack.cli import app
-from tubetrack.cli.common import OutputFormat, csv_safe_cell, emit, handle_errors, records
+from tubetrack.cli.common import (
+    OutputFormat,
+    csv_safe_cell,
+    emit,
+    handle_errors,
+    records,
+)
 from tubetrack.errors import InputError
 
 

@@ -12,7 +12,7 @@ import math
 import sys
 from collections.abc import Callable, Iterable
 from datetime import date, datetime
-from enum import Enum
+from enum import StrEnum
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any, TypeVar
 
@@ -24,7 +24,7 @@ if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
 
 
-class OutputFormat(str, Enum):
+class OutputFormat(StrEnum):
     """Result formats every analysis answers in."""
 
     table = "table"
