@@ -1,0 +1,295 @@
+"""Inversion: logged filament current relative to a tube's own baseline -> wire diameter d/d0.
+
+Why a ratio works
+-----------------
+A regulated generator adjusts the filament current until the tube delivers the station's mA. At a
+fixed (focal spot, mA station, kV) the needed saturation current I_sat is fixed by the emission
+blend and the (unchanged) cathode perveance, whatever the wire's age. For a wire thinned to
+r = d/d0:
+
+* the emitting area shrinks as r^a (a = 1 when it is the wire surface), so the filament must run
+  hotter: J(T) = J(T0) / r^a (Richardson-Dushman);
+* the heat balance gives I_f ~ d^1.5 sqrt(W(T)/rho(T)) (Jones 1926; Jones & Langmuir 1927).
+
+Hence q = I_f / I_f0 = r^1.5 sqrt(g(T)/g(T0)), g = W/rho, T from J(T) = J(T0) r^-a.
+Near 2600 K this is q ~ r^n with n ~ 1.42 (a = 1) or n = 1.5 (a = 0). Sensor gain, wire length,
+end losses and radiating fraction cancel in the ratio; only the baseline temperature T0 matters,
+and weakly. T0 comes from a per-tube fit of the baseline (:func:`fit_baseline`), so absolute
+geometry is not needed.
+
+Uncertainty
+-----------
+* measurement: se(r) = r se(q) / (q n), from the current-ratio standard error;
+* model: half the spread of r between the two emitting-area assumptions (a = 1 and a = 0) and,
+  added in quadrature, half the spread when the baseline emitting area (thus T0) is scaled by
+  2 and 1/2. Reported separately and combined in quadrature.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+from numpy.typing import ArrayLike
+
+from tubetrack.errors import AnalysisError, InputError
+from tubetrack.physics.filament import FilamentSpec, filament_current_for_tube_current_a
+from tubetrack.physics.tungsten import _asarray, _out
+
+__all__ = [
+    "current_ratio_for_diameter_ratio",
+    "inversion_exponent",
+    "diameter_ratio_from_current_ratio",
+    "invert_current_ratio",
+    "fit_baseline",
+    "kv_compensation_ratio",
+]
+
+_H = 1e-4  # relative step for numerical derivatives in ln r
+
+
+def current_ratio_for_diameter_ratio(
+    spec: FilamentSpec, diameter_ratio: ArrayLike, tube_current_ma: ArrayLike, tube_voltage_kv: ArrayLike
+) -> Any:
+    """Forward model of the inversion: I_f(r) / I_f(1) at fixed tube current and kV [1]."""
+    f1 = _asarray(filament_current_for_tube_current_a(spec, tube_current_ma, tube_voltage_kv, 1.0))
+    fr = _asarray(filament_current_for_tube_current_a(spec, tube_current_ma, tube_voltage_kv, diameter_ratio))
+    return _out(fr / f1)
+
+
+def inversion_exponent(
+    spec: FilamentSpec, tube_current_ma: ArrayLike, tube_voltage_kv: ArrayLike, diameter_ratio: ArrayLike = 1.0
+) -> Any:
+    """Local exponent n = d ln I_f / d ln(d/d0) at fixed tube current and kV [1] (about 1.42)."""
+    r = _asarray(diameter_ratio)
+    up = _asarray(filament_current_for_tube_current_a(spec, tube_current_ma, tube_voltage_kv, r * np.exp(_H)))
+    dn = _asarray(filament_current_for_tube_current_a(spec, tube_current_ma, tube_voltage_kv, r * np.exp(-_H)))
+    return _out(np.log(up / dn) / (2 * _H))
+
+
+def _solve_ratio(spec: FilamentSpec, q: Any, ma: Any, kv: Any) -> tuple[Any, Any]:
+    """Solve q = F(r)/F(1) for r by a fixed-slope Newton iteration in ln r (vectorised)."""
+    f1 = _asarray(filament_current_for_tube_current_a(spec, ma, kv, 1.0))
+    n0 = _asarray(inversion_exponent(spec, ma, kv, 1.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ln_q = np.log(np.where(q > 0, q, np.nan))
+        ln_r = ln_q / n0
+        for _ in range(6):
+            fr = _asarray(filament_current_for_tube_current_a(spec, ma, kv, np.exp(ln_r)))
+            ln_r = ln_r - (np.log(fr / f1) - ln_q) / n0
+    r = np.exp(ln_r)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        n_eff = np.where(np.abs(ln_r) > 1e-9, ln_q / ln_r, n0)
+    return r, n_eff
+
+
+def invert_current_ratio(
+    current_ratio: ArrayLike,
+    spec: FilamentSpec,
+    tube_current_ma: ArrayLike,
+    tube_voltage_kv: ArrayLike,
+    current_ratio_se: ArrayLike | None = None,
+) -> Any:
+    """Diameter ratio from filament-current ratios, with the full uncertainty breakdown.
+
+    Parameters
+    ----------
+    current_ratio : array_like
+        Logged filament current / the tube's baseline current at the same focal spot, mA station
+        and kV (or kV-compensated with :func:`kv_compensation_ratio`) [1].
+    spec : FilamentSpec
+        The tube's filament, ideally from :func:`fit_baseline` on its baseline.
+    tube_current_ma, tube_voltage_kv : array_like
+        The station [mA] and kV [kV] the ratio refers to.
+    current_ratio_se : array_like, optional
+        Standard error of the ratio [1]; None means 0 (model uncertainty only).
+
+    Returns
+    -------
+    pandas.DataFrame
+        diameter_ratio, diameter_ratio_se (total), diameter_ratio_se_measurement,
+        diameter_ratio_se_model, exponent (effective n in q = r^n), exponent_se (model),
+        diameter_loss_pct, diameter_loss_pct_se.
+    """
+    import pandas as pd
+
+    q, ma, kv = np.broadcast_arrays(
+        np.atleast_1d(_asarray(current_ratio)),
+        np.atleast_1d(_asarray(tube_current_ma)),
+        np.atleast_1d(_asarray(tube_voltage_kv)),
+    )
+    se_q = np.zeros_like(q) if current_ratio_se is None else np.broadcast_to(_asarray(current_ratio_se), q.shape)
+    r, n = _solve_ratio(spec, q, ma, kv)
+    alt_a = 0.0 if spec.emitting_area_diameter_exponent != 0 else 1.0
+    r_a, n_a = _solve_ratio(spec.replace(emitting_area_diameter_exponent=alt_a), q, ma, kv)
+    hi_f = min(1.0, spec.emitting_area_fraction * 2.0)
+    r_hi, _ = _solve_ratio(spec.replace(emitting_area_fraction=hi_f), q, ma, kv)
+    r_lo, _ = _solve_ratio(spec.replace(emitting_area_fraction=spec.emitting_area_fraction / 2.0), q, ma, kv)
+    se_model = np.sqrt((0.5 * (r - r_a)) ** 2 + (0.5 * np.maximum(np.abs(r - r_hi), np.abs(r - r_lo))) ** 2)
+    n_local = _asarray(inversion_exponent(spec, ma, kv, r))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        se_meas = r * se_q / (q * n_local)
+    se = np.sqrt(se_meas**2 + se_model**2)
+    return pd.DataFrame(
+        {
+            "diameter_ratio": r,
+            "diameter_ratio_se": se,
+            "diameter_ratio_se_measurement": se_meas,
+            "diameter_ratio_se_model": se_model,
+            "exponent": n,
+            "exponent_se": 0.5 * np.abs(n - n_a),
+            "diameter_loss_pct": 100.0 * (1.0 - r),
+            "diameter_loss_pct_se": 100.0 * se,
+        }
+    )
+
+
+def diameter_ratio_from_current_ratio(
+    current_ratio: ArrayLike,
+    spec: FilamentSpec,
+    tube_current_ma: ArrayLike,
+    tube_voltage_kv: ArrayLike,
+    current_ratio_se: ArrayLike | None = None,
+) -> tuple[Any, Any]:
+    """Estimate d/d0 from the filament-current ratio I_f / I_f,baseline at fixed station and kV.
+
+    Parameters
+    ----------
+    current_ratio : array_like
+        Filament current relative to the tube's own baseline at the same focal spot, station and
+        kV [1]. Sensor gain cancels.
+    spec : FilamentSpec
+        The filament (from :func:`fit_baseline` for this tube, or a default).
+    tube_current_ma : array_like
+        mA station [mA].
+    tube_voltage_kv : array_like
+        Tube voltage [kV].
+    current_ratio_se : array_like, optional
+        Standard error of the ratio [1].
+
+    Returns
+    -------
+    (diameter_ratio, diameter_ratio_se) : tuple of numpy arrays (0-d for scalar input)
+        d/d0 [1] and its standard error [1] (measurement and model combined in quadrature; see
+        :func:`invert_current_ratio` for the parts). Approximately q^(1/1.42).
+    """
+    frame = invert_current_ratio(current_ratio, spec, tube_current_ma, tube_voltage_kv, current_ratio_se)
+    shape = np.broadcast_shapes(
+        np.shape(current_ratio), np.shape(tube_current_ma), np.shape(tube_voltage_kv),
+        () if current_ratio_se is None else np.shape(current_ratio_se),
+    )
+    r = frame["diameter_ratio"].to_numpy().reshape(shape) if shape else frame["diameter_ratio"].to_numpy()[0]
+    se = frame["diameter_ratio_se"].to_numpy().reshape(shape) if shape else frame["diameter_ratio_se"].to_numpy()[0]
+    return r, se
+
+
+def kv_compensation_ratio(
+    spec: FilamentSpec, tube_current_ma: ArrayLike, tube_voltage_kv: ArrayLike, reference_kv: ArrayLike
+) -> Any:
+    """Space-charge compensation: I_f(mA, kV) / I_f(mA, reference kV) for the same wire [1].
+
+    Divide a logged filament current by this to express it at the reference kV (the generator
+    heats less at high kV for the same mA because the space-charge limit rises).
+    """
+    at_kv = _asarray(filament_current_for_tube_current_a(spec, tube_current_ma, tube_voltage_kv))
+    at_ref = _asarray(filament_current_for_tube_current_a(spec, tube_current_ma, reference_kv))
+    return _out(at_kv / at_ref)
+
+
+def fit_baseline(
+    spec: FilamentSpec,
+    tube_current_ma: ArrayLike,
+    tube_voltage_kv: ArrayLike,
+    filament_current_a: ArrayLike,
+    *,
+    fit_emitting_area: bool = True,
+    log_current_sd: float = 0.01,
+    area_prior_sd: float = 0.5,
+    perveance_prior_sd: float = 2.0,
+) -> FilamentSpec:
+    """Fit a tube's filament to its baseline (kV, mA, filament current) triples.
+
+    Fits, by least squares on ln(filament current): ``current_scale`` (sensor gain and geometry,
+    free), ``perveance_a_v15`` (space charge, from the kV dependence; weak log-normal prior at the
+    spec's value, sd ``perveance_prior_sd`` in ln) and, if ``fit_emitting_area``,
+    ``emitting_area_fraction`` (sets the baseline temperature; prior sd ``area_prior_sd`` in ln,
+    because current scale and emitting area are only weakly separable). The wire is taken as new
+    (d/d0 = 1) during the baseline.
+
+    Parameters
+    ----------
+    spec : FilamentSpec
+        Starting values and priors (e.g. ``default_filament_spec(focal_spot)``).
+    tube_current_ma, tube_voltage_kv, filament_current_a : array_like
+        Baseline triples: station [mA], kV [kV], logged filament current [A] (mean per
+        station/kV is fine). NaN rows are dropped.
+    log_current_sd : float, default 0.01
+        Noise of ln(filament current) per triple [1], weights data against priors.
+
+    Returns
+    -------
+    FilamentSpec
+        ``spec`` with the fitted fields replaced.
+
+    Raises
+    ------
+    InputError
+        Fewer than one usable triple.
+    AnalysisError
+        The optimiser fails (check units: mA, kV, A; a kV/mA combination the tube cannot deliver).
+    """
+    from scipy.optimize import least_squares
+
+    ma, kv, i_f = (np.ravel(a) for a in np.broadcast_arrays(
+        _asarray(tube_current_ma), _asarray(tube_voltage_kv), _asarray(filament_current_a)
+    ))
+    ok = np.isfinite(ma) & np.isfinite(kv) & np.isfinite(i_f) & (ma > 0) & (kv > 0) & (i_f > 0)
+    ma, kv, i_f = ma[ok], kv[ok], i_f[ok]
+    if ma.size < 1:
+        raise InputError(
+            "fit_baseline got no usable (mA, kV, filament current) triple. Give positive mA, kV "
+            "and filament current in A (not mA) from the tube's first weeks."
+        )
+    # Lowest perveance that can deliver every baseline point (blend: I < P V^1.5).
+    p_min = float(np.max(ma * 1e-3 / (kv * 1e3) ** 1.5)) * 1.0005
+    ln_p0 = np.log(max(spec.perveance_a_v15, 1.5 * p_min))
+    ln_f0 = np.log(spec.emitting_area_fraction)
+    base = spec.replace(current_scale=1.0)
+    model0 = _asarray(filament_current_for_tube_current_a(base.replace(perveance_a_v15=np.exp(ln_p0)), ma, kv))
+    ln_s0 = float(np.nanmean(np.log(i_f) - np.log(model0))) if np.any(np.isfinite(model0)) else 0.0
+
+    def unpack(theta: np.ndarray) -> FilamentSpec:
+        ln_s, ln_p = theta[0], theta[1]
+        f_e = np.exp(theta[2]) if fit_emitting_area else spec.emitting_area_fraction
+        return spec.replace(current_scale=float(np.exp(ln_s)), perveance_a_v15=float(np.exp(ln_p)),
+                            emitting_area_fraction=float(min(f_e, 1.0)))
+
+    def residuals(theta: np.ndarray) -> np.ndarray:
+        s = unpack(theta)
+        model = _asarray(filament_current_for_tube_current_a(s, ma, kv))
+        res = (np.log(i_f) - np.log(model)) / log_current_sd
+        res = np.where(np.isfinite(res), res, 1e3)
+        prior = [(theta[1] - np.log(spec.perveance_a_v15)) / perveance_prior_sd]
+        if fit_emitting_area:
+            prior.append((theta[2] - ln_f0) / area_prior_sd)
+        return np.concatenate([res, prior])
+
+    theta0 = [ln_s0, ln_p0] + ([ln_f0] if fit_emitting_area else [])
+    lower = [-np.inf, np.log(p_min)] + ([np.log(1e-3)] if fit_emitting_area else [])
+    upper = [np.inf, np.log(1e-4)] + ([0.0] if fit_emitting_area else [])
+    theta0[1] = float(np.clip(theta0[1], lower[1] + 1e-9, upper[1] - 1e-9))
+    if fit_emitting_area:
+        theta0[2] = float(np.clip(theta0[2], lower[2] + 1e-9, upper[2] - 1e-9))
+    try:
+        sol = least_squares(residuals, np.array(theta0, dtype=float), bounds=(lower, upper), x_scale=1.0)
+    except ValueError as exc:  # pragma: no cover - defensive
+        raise AnalysisError(
+            f"fit_baseline failed ({exc}). Check: filament current in A, tube current in mA, kV in "
+            "kV; the baseline holds stations the tube can deliver at those kV."
+        ) from None
+    if not sol.success:
+        raise AnalysisError(
+            f"fit_baseline did not converge ({sol.message}). Check units (A, mA, kV) and that the "
+            "baseline covers more than one kV if the perveance matters."
+        )
+    return unpack(sol.x)
