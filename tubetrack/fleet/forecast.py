@@ -1,0 +1,545 @@
+"""Replacement forecast: per-tube monthly probabilities, Poisson-binomial fleet totals, renewal.
+
+Rule for each tube in service (documented in docs/fleet.md):
+
+* **With a health forecast** (table ``result_health_rul_cdf``, contract E): the tube's filament
+  end-of-life CDF P_fil(t) comes from its own health forecast. Both focal spots' filaments are
+  needed, so P_fil(t) = 1 - prod_spots (1 - p_spot(t)) (spots treated as independent, the
+  cautious choice). Non-filament causes come from the fleet Weibull fitted to *non-filament*
+  failures (filament failures censored), conditional on the tube's age:
+  P_oth(t) = 1 - S_oth(a + t) / S_oth(a). Independent competing risks:
+  P(t) = 1 - (1 - P_fil(t)) (1 - P_oth(t)).
+* **Without a health forecast**: the fleet Weibull of all causes conditional on age,
+  P(t) = 1 - S(a + t) / S(a).
+
+On a workload clock the age is the tube's workload so far and the future workload grows at the
+tube's recent daily rate (``age + rate x days``). The probability of a replacement in month m is
+P(t_m) - P(t_{m-1}). The health CDF is given at 30, 60, ..., 365 days and is interpolated
+linearly in days (0 at day 0) and held flat beyond its last horizon.
+
+Renewal option: a replacement tube is new and follows the all-cause fleet Weibull, so the
+expected number of replacements of one position within t is the delayed renewal function
+M_D(t) = F_a(t) + int_0^t M(t - x) dF_a(x) (Cox, Renewal Theory, Methuen 1962, ch. 2), with M
+the ordinary renewal function of the fleet Weibull computed by numerical convolution.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass
+from datetime import datetime
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from tubetrack.errors import AnalysisError, InputError, TubetrackWarning
+
+if TYPE_CHECKING:  # pragma: no cover
+    import pandas as pd
+
+    from tubetrack.fleet.survival import WeibullResult
+
+_DAY_S = 86400.0
+
+
+# ----------------------------------------------------------------------------------------------
+# Distribution of a sum of independent counts
+# ----------------------------------------------------------------------------------------------
+
+
+def count_sum_pmf(pmfs) -> np.ndarray:
+    """Exact distribution of the sum of independent counts by dynamic programming.
+
+    Parameters
+    ----------
+    pmfs
+        Array (n, K): row i is the pmf of count i on {0, ..., K-1}. K = 2 gives the
+        Poisson-binomial distribution.
+
+    Returns
+    -------
+    numpy.ndarray
+        pmf of the sum on {0, ..., n (K-1)}.
+
+    Notes
+    -----
+    Convolution one record at a time; each step is vectorised over the support
+    (Chen & Liu, "Statistical applications of the Poisson-binomial and conditional Bernoulli
+    distributions", Statistica Sinica 7 (1997) 875-892, the recursive method).
+    """
+    pmfs = np.atleast_2d(np.asarray(pmfs, dtype=float))
+    n, k = pmfs.shape
+    if n == 0:
+        return np.array([1.0])
+    if np.any(pmfs < -1e-12) or np.any(np.abs(pmfs.sum(axis=1) - 1) > 1e-9):
+        raise InputError("each count pmf must be non-negative and sum to 1.")
+    pmfs = np.clip(pmfs, 0, 1)
+    out = np.zeros(n * (k - 1) + 1)
+    out[0] = 1.0
+    top = 0
+    for row in pmfs:
+        new = np.zeros(top + k)
+        for j in range(k):
+            if row[j] > 0:
+                new[j : j + top + 1] += row[j] * out[: top + 1]
+        top += k - 1
+        out[: top + 1] = new
+    return out
+
+
+def poisson_binomial_pmf(p) -> np.ndarray:
+    """pmf of the number of successes among independent Bernoulli(p_i) trials (exact DP)."""
+    p = np.asarray(p, dtype=float).ravel()
+    if np.any((p < 0) | (p > 1)) or not np.all(np.isfinite(p)):
+        raise InputError("probabilities must lie in [0, 1].")
+    return count_sum_pmf(np.column_stack([1 - p, p]))
+
+
+def pmf_quantile(pmf: np.ndarray, q: float) -> int:
+    """Smallest k with P(N <= k) >= q."""
+    cdf = np.cumsum(pmf)
+    return int(np.searchsorted(cdf, q - 1e-12, side="left"))
+
+
+def pmf_interval(pmf: np.ndarray, level: float) -> tuple[int, int]:
+    """Equal-tailed interval [q(a/2), q(1 - a/2)] of a count distribution, a = 1 - level."""
+    a = 1 - level
+    return pmf_quantile(pmf, a / 2), pmf_quantile(pmf, 1 - a / 2)
+
+
+# ----------------------------------------------------------------------------------------------
+# Renewal function
+# ----------------------------------------------------------------------------------------------
+
+
+def renewal_function(cdf, t_max: float, n_steps: int = 2000) -> tuple[np.ndarray, np.ndarray]:
+    """Ordinary renewal function M(t) = F(t) + int_0^t M(t - x) dF(x) on a grid.
+
+    Parameters
+    ----------
+    cdf
+        Vectorised lifetime CDF F.
+    t_max
+        End of the grid [clock unit].
+    n_steps
+        Grid steps; the error falls as the square of the step (trapezoidal Stieltjes sums).
+
+    Returns
+    -------
+    (t, M)
+        Grid and renewal function values [expected renewals].
+
+    Notes
+    -----
+    Riemann-Stieltjes scheme with the trapezoidal rule in M (M. Xie, "On the solution of renewal-
+    type integral equations", Commun. Statist. Simul. 18 (1989) 281-293):
+    M_n = [F_n + sum_{i=2}^n (M_{n-i+1} + M_{n-i}) dF_i / 2 + M_{n-1} dF_1 / 2] / (1 - dF_1 / 2).
+    """
+    t = np.linspace(0.0, float(t_max), n_steps + 1)
+    f = np.asarray(cdf(t), dtype=float)
+    f[0] = 0.0
+    df = np.diff(f)  # dF_i for i = 1..n
+    m = np.zeros_like(t)
+    for n in range(1, n_steps + 1):
+        # sum_{i=2}^{n} (M_{n-i+1} + M_{n-i}) dF_i / 2
+        if n >= 2:
+            i = np.arange(2, n + 1)
+            s = np.dot(m[n - i + 1] + m[n - i], df[i - 1]) / 2
+        else:
+            s = 0.0
+        m[n] = (f[n] + s + m[n - 1] * df[0] / 2) / (1 - df[0] / 2)
+    return t, m
+
+
+def delayed_renewal(first_cdf, renewal_m, t: np.ndarray) -> np.ndarray:
+    """Expected renewals M_D(t) = F1(t) + int_0^t M(t - x) dF1(x) on the grid ``t``.
+
+    ``first_cdf`` are F1 values on ``t`` (array, same length, F1(0) = 0) and ``renewal_m`` the
+    ordinary renewal function on the same grid. Trapezoidal Stieltjes sums. Vectorised over
+    leading axes of ``first_cdf`` (shape (..., len(t))).
+    """
+    f1 = np.asarray(first_cdf, dtype=float)
+    d1 = np.diff(f1, axis=-1)  # (..., n)
+    n = len(t) - 1
+    out = np.array(f1, copy=True)
+    mm = np.asarray(renewal_m, dtype=float)
+    for k in range(1, n + 1):
+        i = np.arange(1, k + 1)
+        weights = (mm[k - i] + mm[k - i + 1]) / 2  # M at (t_k - x) over cell i
+        out[..., k] = f1[..., k] + d1[..., :k] @ weights
+    return out
+
+
+# ----------------------------------------------------------------------------------------------
+# Replacement forecast
+# ----------------------------------------------------------------------------------------------
+
+
+def month_edges(as_of: datetime, months: int = 12, horizon_days: float | None = None) -> list:
+    """Calendar month boundaries (UTC) from ``as_of``.
+
+    The first period runs from ``as_of`` to the first of the next month (unless ``as_of`` is a
+    month start); then whole calendar months. With ``horizon_days`` the periods stop at
+    ``as_of + horizon_days`` (the last one may be partial) and ``months`` is ignored.
+    """
+    import pandas as pd
+
+    start = pd.Timestamp(as_of)
+    month_start = start.to_period("M").to_timestamp()
+    first = start if start == month_start else month_start + pd.DateOffset(months=1)
+    if horizon_days is None:
+        if start == month_start:
+            return [start + pd.DateOffset(months=i) for i in range(months + 1)]
+        return [start] + [first + pd.DateOffset(months=i) for i in range(months)]
+    if horizon_days <= 0:
+        raise InputError(f"--horizon-days is {horizon_days!r}; give a positive number of days.")
+    end = start + pd.Timedelta(days=float(horizon_days))
+    edges = [start]
+    k = 0 if first > start else 1
+    while True:
+        nxt = first + pd.DateOffset(months=k)
+        if nxt >= end:
+            break
+        edges.append(nxt)
+        k += 1
+    edges.append(end)
+    return edges
+
+
+def health_filament_cdf(rul_cdf: pd.DataFrame, tube_ids, days: np.ndarray) -> np.ndarray:
+    """Per-tube filament end-of-life CDF at ``days`` from the health forecast (contract E).
+
+    Returns an array (len(tube_ids), len(days)); rows are NaN for tubes without a forecast.
+    Focal spots combined as 1 - prod(1 - p); linear interpolation in days from (0, 0); flat
+    beyond the last horizon.
+    """
+    ids = list(tube_ids)
+    out = np.full((len(ids), len(days)), np.nan)
+    if rul_cdf is None or rul_cdf.empty:
+        return out
+    pos = {t: i for i, t in enumerate(ids)}
+    r = rul_cdf.dropna(subset=["p_end_of_life", "horizon_days"])
+    r = r[r["tube_id"].isin(pos)]
+    for (tube, _spot), g in r.groupby(["tube_id", "focal_spot"], sort=False):
+        g = g.sort_values("horizon_days")
+        x = np.concatenate([[0.0], g["horizon_days"].to_numpy(dtype=float)])
+        y = np.concatenate([[0.0], np.clip(g["p_end_of_life"].to_numpy(dtype=float), 0, 1)])
+        y = np.maximum.accumulate(y)
+        p = np.interp(days, x, y)
+        i = pos[tube]
+        prev = np.where(np.isnan(out[i]), 0.0, out[i])
+        out[i] = 1 - (1 - prev) * (1 - p)
+    return out
+
+
+@dataclass(frozen=True)
+class ForecastResult:
+    """Replacement forecast.
+
+    ``tubes``: one row per tube in service and month: ``tube_id``, ``system_id``, ``site``,
+    ``model_label``, ``month`` (first day, UTC), ``month_index`` (1..12), ``period_start_utc``,
+    ``period_end_utc``, ``p_replace`` (probability, or expected count with renewal, of a
+    replacement in the month), ``p_replace_cum`` (cumulative from as_of), ``source``
+    (health+fleet | fleet), ``age_days``.
+    ``summary``: one row per month: ``month``, ``month_index``, ``expected_replacements``,
+    ``lower_80``, ``upper_80``, ``lower_95``, ``upper_95`` (Poisson-binomial quantiles),
+    ``cumulative_expected``, ``cumulative_lower_95``, ``cumulative_upper_95``, ``tubes``,
+    ``renewal``.
+    ``cumulative_pmf``: per-tube pmf of the count over the whole horizon (n x 3 array, counts
+    0, 1, 2+) used for spares.
+    """
+
+    tubes: pd.DataFrame
+    summary: pd.DataFrame
+    per_tube: pd.DataFrame
+    cumulative_pmf: np.ndarray
+    as_of: datetime
+    renewal: bool
+    notes: tuple[str, ...]
+
+
+def tube_replacement_cdf(
+    active: pd.DataFrame,
+    fleet_fit: WeibullResult,
+    grid_days: np.ndarray,
+    *,
+    other_fit: WeibullResult | None = None,
+    health_rul_cdf: pd.DataFrame | None = None,
+    clock: str = "days",
+):
+    """Per-tube probability of a first replacement within each of ``grid_days`` (module rule).
+
+    Returns (cdf (n, g), source (n,), filament cdf (n, g) NaN without health, workload rate
+    (n,), notes).
+    """
+    notes: list[str] = []
+    grid = np.asarray(grid_days, dtype=float)
+    if clock == "days":
+        age = active["exit_days"].to_numpy(dtype=float)
+        rate = np.ones(len(active))
+    else:
+        age = active[clock].to_numpy(dtype=float)
+        rate = active[f"rate_{clock}"].to_numpy(dtype=float)
+        bad = ~np.isfinite(age) | ~np.isfinite(rate)
+        if bad.any():
+            notes.append(
+                f"{int(bad.sum())} tube(s) without logged workload forecast on calendar days "
+                "at the fleet's median workload rate."
+            )
+            med_rate = float(np.nanmedian(rate)) if np.isfinite(rate).any() else 0.0
+            age = np.where(np.isfinite(age), age, np.nan)
+            rate = np.where(np.isfinite(rate), rate, med_rate)
+            days_age = active["exit_days"].to_numpy(dtype=float)
+            age = np.where(np.isfinite(age), age, days_age * med_rate)
+    future = age[:, None] + rate[:, None] * grid[None, :]  # (n, g) clock values
+
+    def cond_cdf(fit, ages, fut):
+        # 1 - S(f)/S(a) = 1 - exp(-(H(f) - H(a))), H(t) = (t/eta)^beta: no underflow when old
+        h_a = np.power(np.clip(ages, 0, None) / fit.eta, fit.beta)[:, None]
+        h_f = np.power(np.clip(fut, 0, None) / fit.eta, fit.beta)
+        return np.clip(-np.expm1(-(h_f - h_a)), 0, 1)
+
+    all_cause = cond_cdf(fleet_fit, age, future)
+    p_fil = health_filament_cdf(health_rul_cdf, active["tube_id"], grid)
+    has_health = ~np.isnan(p_fil).all(axis=1)
+    if health_rul_cdf is None:
+        notes.append(
+            "no health forecasts (result_health_rul_cdf) found: every tube uses the fleet "
+            "Weibull model given its age."
+        )
+    if has_health.any():
+        if other_fit is None:
+            notes.append(
+                "too few non-filament failures for a cause-specific fit: tubes with a health "
+                "forecast combine it with the all-cause fleet model (conservative)."
+            )
+            oth = all_cause
+        else:
+            oth = cond_cdf(other_fit, age, future)
+        combined = 1 - (1 - np.nan_to_num(p_fil)) * (1 - oth)
+        first_cdf = np.where(has_health[:, None], combined, all_cause)
+    else:
+        first_cdf = all_cause
+    source = np.where(has_health, "health+fleet", "fleet")
+    return first_cdf, source, p_fil, rate, notes
+
+
+def replacement_forecast(
+    life: pd.DataFrame,
+    fleet_fit: WeibullResult,
+    *,
+    as_of: datetime,
+    months: int = 12,
+    other_fit: WeibullResult | None = None,
+    health_rul_cdf: pd.DataFrame | None = None,
+    clock: str = "days",
+    renewal: bool = False,
+    grid_days: float = 1.0,
+    horizon_days: float | None = None,
+) -> ForecastResult:
+    """Monthly replacement probabilities per tube and Poisson-binomial fleet totals.
+
+    Parameters
+    ----------
+    life
+        :attr:`LifeData.frame` (tubes in service are forecast; others ignored).
+    fleet_fit
+        All-cause Weibull on ``clock``.
+    as_of
+        Forecast origin (UTC).
+    months
+        Horizon in calendar months.
+    other_fit
+        Weibull of non-filament causes (used with health forecasts). ``None``: tubes with a
+        health forecast still use the all-cause fleet model and a note says so.
+    health_rul_cdf
+        Contract-E table ``result_health_rul_cdf`` or ``None``.
+    clock
+        Clock of the fits: ``days`` or a workload clock (future workload at the recent rate).
+    renewal
+        Count replacements of replacements inside the horizon (renewal function).
+    grid_days
+        Step of the internal day grid [d].
+    horizon_days
+        Horizon in days instead of ``months`` (the last period may be a partial month) [d].
+    """
+    import pandas as pd
+
+    notes: list[str] = []
+    active = life[life["status"] == "in_service"].reset_index(drop=True)
+    edges = month_edges(as_of, months, horizon_days)
+    as_of_ts = pd.Timestamp(as_of)
+    edge_days = np.array([(e - as_of_ts).total_seconds() / _DAY_S for e in edges])
+    horizon = float(edge_days[-1])
+    n_grid = max(int(math.ceil(horizon / grid_days)), 1)
+    grid = np.linspace(0.0, horizon, n_grid + 1)
+    first_cdf, source, p_fil, rate, more = tube_replacement_cdf(
+        active, fleet_fit, grid, other_fit=other_fit, health_rul_cdf=health_rul_cdf, clock=clock
+    )
+    notes.extend(more)
+
+    if renewal:
+        if clock != "days":
+            # renewal on calendar days needs the new tube's clock: use the fleet median rate
+            med_rate = float(np.nanmedian(rate)) if len(rate) else 1.0
+            new_cdf = lambda d: fleet_fit.cdf(np.asarray(d) * med_rate)  # noqa: E731
+        else:
+            new_cdf = fleet_fit.cdf
+        _, m_new = renewal_function(new_cdf, horizon, n_grid)
+        expected = delayed_renewal(first_cdf, m_new, grid)
+        # P(N >= 2) within the horizon: int_0^h F(h - x) dF1(x)
+        f_new = np.asarray(new_cdf(grid), dtype=float)
+        d1 = np.diff(first_cdf, axis=1)
+        p2 = d1 @ ((f_new[::-1][:-1] + f_new[::-1][1:]) / 2)
+    else:
+        expected = first_cdf
+        p2 = np.zeros(len(active))
+    at_edges = np.stack([np.interp(edge_days, grid, row) for row in expected]) if len(
+        active
+    ) else np.zeros((0, len(edge_days)))
+    monthly = np.diff(at_edges, axis=1)  # (n, months)
+    if renewal and np.any(monthly > 0.5):
+        notes.append("some monthly expected counts exceed 0.5; the per-month Bernoulli "
+                     "approximation of the renewal option is coarse for them.")
+    monthly_p = np.clip(monthly, 0, 1)
+
+    month_starts = [pd.Timestamp(e).to_period("M").to_timestamp() for e in edges[:-1]]
+    n, k = monthly.shape
+    tubes = pd.DataFrame(
+        {
+            "tube_id": np.repeat(active["tube_id"].to_numpy(), k),
+            "system_id": np.repeat(active["system_id"].to_numpy(), k),
+            "site": np.repeat(active["site"].to_numpy(), k),
+            "model_label": np.repeat(active["model_label"].to_numpy(), k),
+            "month": np.tile(np.array(month_starts, dtype="datetime64[ns]"), n),
+            "month_index": np.tile(np.arange(1, k + 1), n),
+            "period_start_utc": np.tile(np.array(edges[:-1], dtype="datetime64[ns]"), n),
+            "period_end_utc": np.tile(np.array(edges[1:], dtype="datetime64[ns]"), n),
+            "p_replace": monthly.ravel(),
+            "p_replace_cum": (at_edges[:, 1:] - at_edges[:, :1]).ravel(),
+            "source": np.repeat(source, k),
+            "age_days": np.repeat(active["exit_days"].to_numpy(dtype=float), k),
+        }
+    )
+    rows = []
+    for j in range(k):
+        pmf = poisson_binomial_pmf(monthly_p[:, j])
+        lo80, hi80 = pmf_interval(pmf, 0.80)
+        lo95, hi95 = pmf_interval(pmf, 0.95)
+        rows.append(
+            {
+                "month": month_starts[j],
+                "month_index": j + 1,
+                "period_start_utc": edges[j],
+                "period_end_utc": edges[j + 1],
+                "expected_replacements": float(monthly[:, j].sum()),
+                "lower_80": lo80,
+                "upper_80": hi80,
+                "lower_95": lo95,
+                "upper_95": hi95,
+            }
+        )
+    summary = pd.DataFrame(rows)
+    # pmf over the horizon: counts 0, 1, 2+ (with renewal; P(2+) = p2)
+    p_any = np.clip(first_cdf[:, -1], 0, 1) if n else np.zeros(0)
+    cum_pmf = np.column_stack([1 - p_any, p_any - p2, p2]) if n else np.zeros((0, 3))
+    cum_pmf = np.clip(cum_pmf, 0, 1)
+    cum_pmf = cum_pmf / cum_pmf.sum(axis=1, keepdims=True) if n else cum_pmf
+    cum_total = count_sum_pmf(cum_pmf)
+    summary["cumulative_expected"] = summary["expected_replacements"].cumsum()
+    cum_lo, cum_hi = [], []
+    for j in range(k):
+        if j == k - 1:
+            lo, hi = pmf_interval(cum_total, 0.95)
+        else:
+            lo, hi = pmf_interval(
+                poisson_binomial_pmf(np.clip(at_edges[:, j + 1] - at_edges[:, 0], 0, 1)), 0.95
+            )
+        cum_lo.append(lo)
+        cum_hi.append(hi)
+    summary["cumulative_lower_95"] = cum_lo
+    summary["cumulative_upper_95"] = cum_hi
+    summary["tubes"] = n
+    summary["renewal"] = renewal
+    per_tube = pd.DataFrame(
+        {
+            "tube_id": active["tube_id"],
+            "system_id": active["system_id"],
+            "site": active["site"],
+            "model_label": active["model_label"],
+            "age_days": active["exit_days"],
+            "source": source,
+            "p_replace_horizon": at_edges[:, -1] - at_edges[:, 0] if n else [],
+            "p_two_or_more": p2,
+            "price": active["price"],
+            "price_currency": active["price_currency"],
+        }
+    )
+    if n == 0:
+        warnings.warn("no tubes in service to forecast.", TubetrackWarning, stacklevel=2)
+    return ForecastResult(
+        tubes=tubes,
+        summary=summary,
+        per_tube=per_tube,
+        cumulative_pmf=cum_pmf,
+        as_of=as_of_ts.to_pydatetime(),
+        renewal=renewal,
+        notes=tuple(notes),
+    )
+
+
+def expected_failures_next(fit: WeibullResult, ages, horizon: float, level: float = 0.95):
+    """Expected failures among survivors of the given ages within ``horizon``, with interval.
+
+    Returns (expected, lower, upper, pmf): Poisson-binomial of the conditional probabilities
+    1 - S(a + h) / S(a) (Meeker & Escobar 1998, sec. 12.? field-failure prediction; the bearing
+    cage example).
+    """
+    p = fit.conditional_failure_probability(np.asarray(ages, dtype=float), horizon)
+    pmf = poisson_binomial_pmf(p)
+    lo, hi = pmf_interval(pmf, level)
+    return float(p.sum()), lo, hi, pmf
+
+
+def check_fit_available(fit) -> None:
+    if fit is None:
+        raise AnalysisError(
+            "no fleet Weibull fit is available (fewer than 2 failures). A replacement forecast "
+            "needs failures to learn from; pool more history or systems."
+        )
+
+
+def forecast_by_group(forecast: ForecastResult, by: str) -> pd.DataFrame:
+    """Monthly Poisson-binomial totals per group (``by`` a column of ``forecast.tubes``).
+
+    Columns: ``group_by``, ``group``, ``month``, ``month_index``, ``expected_replacements``,
+    ``lower_80``, ``upper_80``, ``lower_95``, ``upper_95``, ``tubes``.
+    """
+    import pandas as pd
+
+    t = forecast.tubes
+    if by not in t.columns:
+        raise InputError(f"cannot group the forecast by {by!r}.")
+    rows = []
+    keys = t[by].fillna("(unknown)")
+    for (group, idx), g in t.groupby([keys, "month_index"], sort=True):
+        p = np.clip(g["p_replace"].to_numpy(dtype=float), 0, 1)
+        pmf = poisson_binomial_pmf(p)
+        lo80, hi80 = pmf_interval(pmf, 0.80)
+        lo95, hi95 = pmf_interval(pmf, 0.95)
+        rows.append(
+            {
+                "group_by": by,
+                "group": group,
+                "month": g["month"].iloc[0],
+                "month_index": idx,
+                "expected_replacements": float(g["p_replace"].sum()),
+                "lower_80": lo80,
+                "upper_80": hi80,
+                "lower_95": lo95,
+                "upper_95": hi95,
+                "tubes": len(g),
+            }
+        )
+    return pd.DataFrame(rows)
