@@ -138,15 +138,16 @@ def filament_circuit_operating_point(
     n = float(spec.turns_ratio if turns_ratio is None else turns_ratio)
     if not n > 0:
         raise InputError(f"turns ratio is {n!r}; it must be > 0 (Np/Ns, e.g. 20 for 240 V -> 12 V).")
-    mains, kv, r, rs = np.broadcast_arrays(
+    mains, kv, r, rs, drop_in = np.broadcast_arrays(
         np.atleast_1d(_asarray(mains_v)),
         np.atleast_1d(_asarray(tube_voltage_kv)),
         np.atleast_1d(_asarray(diameter_ratio)),
         np.atleast_1d(_asarray(series_resistance_ohm)),
+        np.atleast_1d(_asarray(0.0 if primary_drop_v is None else primary_drop_v)),
     )
     d = spec.diameter_m * r
     if primary_drop_v is not None:
-        drop = np.broadcast_to(_asarray(primary_drop_v), mains.shape)
+        drop = drop_in
         v_p = mains - drop
         v_f = v_p / n
         t = _asarray(filament_temperature_for_voltage_k(v_f, d, spec.length_m,

@@ -158,7 +158,7 @@ _DEFAULTS: dict[str, FilamentSpec] = {
         diameter_m=0.30e-3,
         length_m=0.120,
         emitting_area_fraction=0.5,
-        radiating_area_fraction=0.75,
+        radiating_area_fraction=0.70,
         end_loss_fraction=0.05,
         perveance_a_v15=6.4e-8,
     ),

@@ -294,7 +294,7 @@ def tungsten_vapour_pressure_yaws_pa(temperature_k: ArrayLike) -> Any:
     C. L. Yaws, The Yaws Handbook of Vapor Pressure: Antoine Coefficients, 2nd ed. (2015/2018).
     """
     t = _asarray(temperature_k)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         p = 10.0 ** (12.108 - 40387.965 / (t - 141.51))
     return _out(_mask_range(p, t, *VAPOUR_PRESSURE_RANGE_K))
 
