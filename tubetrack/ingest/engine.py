@@ -974,8 +974,9 @@ def _ingest_in_txn(
     preview = None
     if dry_run and preview_rows:
         rows = con.execute(
-            f"SELECT _line AS line, {', '.join(qi(c) for c in cols)} FROM _tt_new ORDER BY _line LIMIT {int(preview_rows)}"
+            f"SELECT _line AS line, {', '.join(qi(c) for c in cols)} FROM _tt_good WHERE _rank = 1 ORDER BY _line LIMIT {int(preview_rows)}"
         ).df()
+        rows = rows[[c for c in rows.columns if rows[c].notna().any()]]
         rej = con.execute(f"SELECT * FROM ({reject_sql}) ORDER BY line LIMIT {int(preview_rows)}").df()
         preview = Preview(rows, rej)
     report = FileReport(
