@@ -256,7 +256,7 @@ def validate_durations(
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
         raise InputError(
-            f"{what} {names[i]}: duration is {exit_[i]!r}, not a positive number "
+            f"{what} {names[i]}: duration is {float(exit_[i])!r}, not a positive number "
             f"({int(bad.sum())} record(s) affected). Check its install and removal dates."
         )
     if entry is not None:
@@ -265,7 +265,7 @@ def validate_durations(
         if bad.any():
             i = int(np.flatnonzero(bad)[0])
             raise InputError(
-                f"{what} {names[i]}: entry {entry[i]!r} is not before exit {exit_[i]!r} "
+                f"{what} {names[i]}: entry {float(entry[i])!r} is not before exit {float(exit_[i])!r} "
                 f"({int(bad.sum())} record(s) affected). Delayed entry must be >= 0 and "
                 "earlier than the end of follow-up."
             )
