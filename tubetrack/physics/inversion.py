@@ -20,9 +20,13 @@ geometry is not needed.
 Uncertainty
 -----------
 * measurement: se(r) = r se(q) / (q n), from the current-ratio standard error;
-* model: half the spread of r between the two emitting-area assumptions (a = 1 and a = 0) and,
-  added in quadrature, half the spread when the baseline emitting area (thus T0) is scaled by
-  2 and 1/2. Reported separately and combined in quadrature.
+* model: the full spread of r between the two emitting-area assumptions (a = 1 and a = 0: the
+  truth may be either, so one standard error spans the gap) and, added in quadrature, half the
+  spread when the baseline emitting area (thus T0) is scaled by 2 and 1/2. Reported separately
+  and combined in quadrature. The exponent's model error is likewise |n(a=1) - n(a=0)|.
+
+What is estimated is d/d0 relative to the wire during the baseline period: wear during the
+baseline itself is not visible in a ratio (keep the baseline short and early).
 """
 
 from __future__ import annotations
@@ -125,7 +129,9 @@ def invert_current_ratio(
     hi_f = min(1.0, spec.emitting_area_fraction * 2.0)
     r_hi, _ = _solve_ratio(spec.replace(emitting_area_fraction=hi_f), q, ma, kv)
     r_lo, _ = _solve_ratio(spec.replace(emitting_area_fraction=spec.emitting_area_fraction / 2.0), q, ma, kv)
-    se_model = np.sqrt((0.5 * (r - r_a)) ** 2 + (0.5 * np.maximum(np.abs(r - r_hi), np.abs(r - r_lo))) ** 2)
+    # Model error: the full spread between the emitting-area assumptions (a = 1 vs a = 0: either
+    # may hold, so one standard error spans the whole gap) and half the spread for T0 (area x2, /2).
+    se_model = np.sqrt((r - r_a) ** 2 + (0.5 * np.maximum(np.abs(r - r_hi), np.abs(r - r_lo))) ** 2)
     n_local = _asarray(inversion_exponent(spec, ma, kv, r))
     with np.errstate(divide="ignore", invalid="ignore"):
         se_meas = r * se_q / (q * n_local)
@@ -137,7 +143,7 @@ def invert_current_ratio(
             "diameter_ratio_se_measurement": se_meas,
             "diameter_ratio_se_model": se_model,
             "exponent": n,
-            "exponent_se": 0.5 * np.abs(n - n_a),
+            "exponent_se": np.abs(n - n_a),
             "diameter_loss_pct": 100.0 * (1.0 - r),
             "diameter_loss_pct_se": 100.0 * se,
         }
