@@ -87,25 +87,6 @@ class _Source:
     json: bool = False
 
 
-def _csv_options(path: Path, scan: rd.FileScan, profile: Profile | None, p: _Params) -> str:
-    opts = [
-        "all_varchar=true",
-        "header=true",
-        f"max_line_size={MAX_LINE_BYTES}",
-    ]
-    if profile is not None and profile.delimiter:
-        opts.append(f"delim={p.add(profile.delimiter)}")
-    elif rd.base_suffix(path) == ".tsv":
-        opts.append("delim=E'\\t'")
-    if profile is not None and profile.encoding != "utf-8":
-        opts.append(f"encoding={p.add(profile.encoding)}")
-    if scan.gzip:
-        opts.append("compression='gzip'")
-    else:
-        opts.append("compression='none'")
-    return ", ".join(opts)
-
-
 def _open_source(
     con: duckdb.DuckDBPyConnection,
     path: Path,
@@ -138,28 +119,78 @@ def _open_source(
         except Exception as exc:
             raise FileFailure(shown, None, f"not readable as JSON Lines ({_short(exc)}). Check the file.") from None
         return _Source(sql, tuple(sorted(k[0] for k in keys)), fmt, 0, json=True)
-    # CSV / TSV / text
-    opts = _csv_options(path, scan, profile, p)
-    try:
-        desc = con.execute(
-            f"DESCRIBE SELECT * FROM read_csv({ppath}, {opts}, ignore_errors=true)", p.values
-        ).fetchall()
-    except Exception as exc:
-        raise FileFailure(shown, 1, f"cannot be read as CSV ({_short(exc)}). Check the file, or give its delimiter and encoding in a profile.") from None
-    cols = [r[0] for r in desc]
-    skip = 0
-    try:
-        sniff = con.execute(
-            f"SELECT SkipRows FROM sniff_csv({ppath}, {opts})", p.values
-        ).fetchone()
-        skip = int(sniff[0]) if sniff and sniff[0] else 0
-    except Exception:
-        skip = 0
-    sql = (
-        f"(SELECT row_number() OVER () AS _rec, * FROM read_csv({ppath}, {opts}, ignore_errors=true, "
-        f"store_rejects=true, rejects_table='{_CSV_REJ}', rejects_scan='{_CSV_SCAN}'))"
-    )
-    return _Source(sql, tuple(cols), "csv", 1 + skip)
+    # CSV / TSV / text: header and delimiter decided here, rows parsed by DuckDB (RFC 4180
+    # quoting) with the sniffer off, so a malformed or over-long line becomes a reject row
+    # instead of stopping the file.
+    enc = profile.encoding if profile else "utf-8"
+    header = _header_text(scan.head, enc)
+    if not header.strip():
+        raise FileFailure(shown, 1, "the first line is empty; it must be the header row with the column names. Remove the empty lines at the top.")
+    if profile is not None and profile.delimiter:
+        delim = profile.delimiter
+    elif rd.base_suffix(path) == ".tsv":
+        delim = "\t"
+    else:
+        delim = _guess_delimiter(header)
+    cols = _split_header(header, delim)
+    internal = {f"c{i}": "VARCHAR" for i in range(len(cols))}
+    opts = [
+        f"delim={p.add(delim)}",
+        "quote='\"'",
+        "escape='\"'",
+        "header=true",
+        "auto_detect=false",
+        f"columns={p.add(internal)}",
+        f"max_line_size={MAX_LINE_BYTES}",
+        "ignore_errors=true",
+        "store_rejects=true",
+        f"rejects_table='{_CSV_REJ}'",
+        f"rejects_scan='{_CSV_SCAN}'",
+        f"compression='{'gzip' if scan.gzip else 'none'}'",
+    ]
+    if enc != "utf-8":
+        opts.append(f"encoding={p.add(enc)}")
+    inner = f"read_csv({ppath}, {', '.join(opts)})"
+    renames = ", ".join(f"c{i} AS {qi(c)}" for i, c in enumerate(_dedupe(cols)))
+    sql = f"(SELECT row_number() OVER () AS _rec, {renames} FROM {inner})"
+    return _Source(sql, tuple(_dedupe(cols)), "csv", 1)
+
+
+def _header_text(head: bytes, encoding: str) -> str:
+    codec = {"utf-8": "utf-8-sig", "latin-1": "latin-1", "utf-16": "utf-16"}[encoding]
+    text = head.decode(codec, errors="replace")
+    return text.split("\n", 1)[0].rstrip("\r")
+
+
+def _guess_delimiter(header: str) -> str:
+    """The candidate delimiter that splits the header into the most fields (comma on ties)."""
+    best, best_n = ",", 1
+    for d in (",", ";", "\t", "|"):
+        n = len(_split_header(header, d))
+        if n > best_n:
+            best, best_n = d, n
+    return best
+
+
+def _split_header(header: str, delim: str) -> list[str]:
+    import csv
+
+    row = next(csv.reader([header], delimiter=delim, quotechar='"'), [])
+    return [c.strip().lstrip("\ufeff") for c in row]
+
+
+def _dedupe(cols: list[str]) -> list[str]:
+    seen: dict[str, int] = {}
+    out = []
+    for c in cols:
+        name = c or "column"
+        if name in seen:
+            seen[name] += 1
+            name = f"{name}_{seen[name]}"
+        else:
+            seen[name] = 0
+        out.append(name)
+    return out
 
 
 def _short(exc: BaseException) -> str:
@@ -713,13 +744,14 @@ def ingest_file(
     except OSError as exc:
         return _failed(con, shown, None, pname, "", started, None, f"cannot read the file ({exc.strerror}). Check the path and permissions.", dry_run), None
     if scan.size == 0:
-        return _failed(con, shown, kind_from_name(path.name), pname, scan.sha256, started, None, "the file is empty (0 bytes). Export it again.", dry_run), None
+        return _failed(con, shown, profile.kind if profile else kind_from_name(path.name) or kind, pname, scan.sha256, started, None, "the file is empty (0 bytes). Export it again.", dry_run), None
     if scan.truncated:
         return _failed(
-            con, shown, kind_from_name(path.name), pname, scan.sha256, started, None,
-            f"the gzip data is truncated or corrupt ({scan.gzip_error}) after {scan.lines} lines; "
-            "nothing was read from it. Copy the file again from its source.",
-            dry_run,
+            con, shown, profile.kind if profile else kind_from_name(path.name) or kind, pname,
+            scan.sha256, started, scan.lines or None,
+            f"the gzip data is truncated or corrupt ({scan.gzip_error}); the whole file is "
+            "rejected, nothing was stored from it. Copy the file again from its source.",
+            dry_run, None, _row_estimate(path, scan),
         ), None
     if not dry_run:
         prev = con.execute(
@@ -750,7 +782,8 @@ def ingest_file(
                 con.execute("COMMIT")
         return report, preview
     except FileFailure as exc:
-        return _failed(con, shown, getattr(exc, "kind", None), pname, scan.sha256, started, exc.line, exc.detail, dry_run, exc.field), None
+        guess = profile.kind if profile else (kind_from_name(path.name) or kind)
+        return _failed(con, shown, guess, pname, scan.sha256, started, exc.line, exc.detail, dry_run, exc.field, _row_estimate(path, scan)), None
     finally:
         _drop_temps(con)
 
@@ -774,7 +807,10 @@ def _failed(
     message: str,
     dry_run: bool,
     field_name: str | None = None,
+    rows: int = 0,
 ) -> FileReport:
+    """Record a file rejected whole: its rows count as read and rejected (nothing vanishes),
+    and one ``rejects`` row (field = the column at fault, if any) carries the message."""
     where = f"{shown} line {line}" if line else shown
     full = f"{where}: {message}"
     file_id = None
@@ -789,7 +825,23 @@ def _failed(
             "INSERT INTO rejects VALUES (?, ?, ?, ?, ?, ?)",
             [file_id, shown, line, field_name, None, "file rejected: " + message],
         )
-    return FileReport(shown, kind, pname, STATUS_FAILED, message=full, sha256=sha, file_id=file_id)
+        con.execute(
+            "UPDATE ingest_files SET rows_read = ?, rows_rejected = ? WHERE file_id = ?",
+            [rows, rows, file_id],
+        )
+    return FileReport(
+        shown, kind, pname, STATUS_FAILED, rows_read=rows, rows_rejected=rows, message=full,
+        sha256=sha, file_id=file_id,
+    )
+
+
+def _row_estimate(path: Path, scan: rd.FileScan) -> int:
+    """Data rows of a file rejected whole: its non-blank lines, less the CSV header."""
+    fmt = rd.detect_format(path, scan.head)
+    if fmt == "parquet" or scan.lines == 0:
+        return 0
+    n = scan.lines - len(scan.blank_lines) - (1 if fmt == "csv" else 0)
+    return max(n, 0)
 
 
 def _ingest_in_txn(
@@ -852,7 +904,7 @@ def _ingest_in_txn(
     unions = []
     for c in err_cols:
         fname = None if c == "e___row" else c.split("__", 1)[1]
-        raw = f"s.{qi('r__' + fname)}" if fname else "CAST(NULL AS VARCHAR)"
+        raw = f"left(s.{qi('r__' + fname)}, 1000)" if fname else "CAST(NULL AS VARCHAR)"
         fexpr = "CAST(NULL AS VARCHAR)" if fname is None else _qs(fname)
         unions.append(
             f"SELECT {line} AS line, {fexpr} AS field, {raw} AS raw_value, s.{qi(c)} AS reason "

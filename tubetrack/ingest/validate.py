@@ -36,7 +36,9 @@ RANGES: dict[str, Range] = {
     "exposure_mas": Range(0.00005, 60000.0, "mAs", "0.1 mA x 0.5 ms up to 2000 mA x 30 s"),
     "filament_current_a": Range(1.0, 12.0, "A", "tungsten filament heating current"),
     "filament_voltage_v": Range(1.0, 20.0, "V", "filament heating voltage"),
-    "prep_time_s": Range(0.0, 10.0, "s", "filament boost and anode run-up before exposure"),
+    # common practice: the prep (boost + anode run-up) lasts as long as the operator holds the
+    # first button stage, until the generator's hold time-out of some tens of seconds
+    "prep_time_s": Range(0.0, 30.0, "s", "filament boost and anode run-up; held prep times out"),
     "arc_count": Range(0.0, 1000.0, "count", "arcs logged during one exposure"),
     "criticality_weight": Range(0.0, 100.0, "", "relative weight, 1 = typical"),
     "uptime_target_pct": Range(0.0, 100.0, "%", "contracted availability"),
@@ -49,16 +51,17 @@ RANGES: dict[str, Range] = {
 #: sounds after 5 min of beam-on time; 10 min covers a long run)
 FLUORO_MAX_EXPOSURE_TIME_S = 600.0
 
-#: Unit mix-ups detected from magnitude: column -> (factor, what it looks like, profile unit).
-#: A value outside its range whose value / factor is inside the range gets this reason.
-MIXUPS: dict[str, tuple[float, str, str]] = {
-    "filament_current_a": (1000.0, "mA given as A", "mA"),
-    "filament_voltage_v": (1000.0, "mV given as V", "mV"),
-    "tube_voltage_kv": (1000.0, "V given as kV", "V"),
-    "tube_current_ma": (0.001, "A given as mA", "A"),
-    "exposure_time_s": (1000.0, "ms given as s", "ms"),
-    "prep_time_s": (1000.0, "ms given as s", "ms"),
-    "exposure_mas": (1000.0, "uAs given as mAs", "uAs"),
+#: Unit mix-ups detected from magnitude: column -> (factor, what it looks like, profile unit,
+#: smallest plausible value after the fix). A value outside its range whose value / factor lies
+#: between that smallest plausible value and the range's high end gets this reason.
+MIXUPS: dict[str, tuple[float, str, str, float]] = {
+    "filament_current_a": (1000.0, "mA given as A", "mA", 1.0),
+    "filament_voltage_v": (1000.0, "mV given as V", "mV", 1.0),
+    "tube_voltage_kv": (1000.0, "V given as kV", "V", 20.0),
+    "tube_current_ma": (0.001, "A given as mA", "A", 0.5),
+    "exposure_time_s": (1000.0, "ms given as s", "ms", 0.0005),
+    "prep_time_s": (1000.0, "ms given as s", "ms", 0.05),
+    "exposure_mas": (1000.0, "uAs given as mAs", "uAs", 0.05),
 }
 
 #: Earliest plausible timestamp (digital generator logs do not predate this).
@@ -98,10 +101,10 @@ def range_reason_sql(kind: Kind, name: str, value: str, raw: str) -> str | None:
     parts = [finite]
     mix = MIXUPS.get(name)
     if mix is not None:
-        factor, looks, unit_name = mix
+        factor, looks, unit_name, plausible = mix
         scaled = f"({value} / {_num(factor)})"
         parts.append(
-            f"WHEN ({value} < {_num(rng.low)} OR {value} > {high}) AND {scaled} >= {_num(rng.low)} "
+            f"WHEN ({value} < {_num(rng.low)} OR {value} > {high}) AND {scaled} >= {_num(plausible)} "
             f"AND {scaled} <= {high} THEN 'unit mix-up: {name} is ' || {raw} || "
             f"' (= ' || CAST({value} AS VARCHAR) || '{unit}), which looks like {looks}; set the "
             f"profile''s unit (units.{name} = \"{unit_name}\")'"
