@@ -137,7 +137,16 @@ def register(app: typer.Typer) -> None:
                 sens = mains_sensitivity(spec, mains_v, kvs, series_resistance_ohm=series_resistance_ohm)
                 frame["dln_tube_current_dln_mains"] = sens["dln_tube_current_dln_mains"].to_numpy()
             frame.insert(0, "focal_spot", spec.focal_spot)
-            emit(frame, fmt, title="Filament circuit operating point (model)")
+            emit(
+                frame,
+                fmt,
+                title="Filament circuit operating point (model)",
+                columns=[
+                    "focal_spot", "mains_v", "primary_voltage_v", "filament_voltage_v",
+                    "filament_current_a", "filament_temperature_k", "tube_current_ma",
+                    "tube_voltage_kv",
+                ],
+            )
             return
 
         default_ma = [100.0, 200.0, 400.0] if spec.focal_spot == "small" else [200.0, 400.0, 600.0]
@@ -167,4 +176,13 @@ def register(app: typer.Typer) -> None:
                 "space_charge_current_ma": op["space_charge_current_ma"],
             }
         )
-        emit(frame, fmt, title="Filament operating points (model; NaN = not deliverable)")
+        emit(
+            frame,
+            fmt,
+            title="Filament operating points (model; - = not deliverable)",
+            columns=[
+                "focal_spot", "tube_current_ma", "tube_voltage_kv", "filament_temperature_k",
+                "filament_current_a", "filament_voltage_v", "series_resistance_ohm",
+                "dln_tube_current_dln_mains",
+            ],
+        )
