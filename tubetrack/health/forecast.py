@@ -1,0 +1,347 @@
+"""Per-tube forecast: drift -> kV normalisation -> segments -> inversion -> wear fit -> projection.
+
+:func:`analyse_tube` is a pure function of one tube's daily statistics; it is what the process
+pool runs. :func:`forecast_from_state` turns the fitted wear model into remaining-life quantiles by
+Monte Carlo over every uncertain input at once:
+
+* the posterior of (a, k) of the wear fit (multivariate normal),
+* the wear before the first logged day,
+* the end-of-life threshold (learned from the fleet, or the default with its assumed spread),
+* the future workload: the recent physics wear per calendar day times a log-normal factor.
+
+For each draw T = max(D - L_now, 0) / (k r): the time at which the projected loss reaches the
+threshold D. P10/P50/P90 of T, P(T <= 30/90/180 days) and the CDF on 30..365 days follow.
+"""
+
+from __future__ import annotations
+
+import zlib
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from tubetrack.health import drift, firstpassage, segments
+from tubetrack.health.degradation import (
+    WearFit,
+    combine_stations,
+    default_physics,
+    fit_wear,
+    posterior,
+    station_losses,
+    wear_index,
+)
+from tubetrack.health.params import HealthParams
+from tubetrack.health.signatures import tube_signatures
+
+#: Horizons of the stored end-of-life CDF [days].
+CDF_HORIZONS_DAYS = (30, 60, 90, 120, 150, 180, 210, 240, 270, 300, 330, 360, 365)
+#: Step of the stored projection [days].
+PROJECTION_STEP_DAYS = 7
+PROJECTION_SPAN_DAYS = 365
+#: Smallest physics calibration factor a draw may take (wear cannot run backwards).
+MIN_K = 0.05
+
+
+def forecast_from_state(state: dict[str, Any], threshold: float, threshold_sd: float,
+                        params: HealthParams) -> dict[str, Any]:
+    """Remaining life of one tube and focal spot from its fitted wear state.
+
+    Parameters
+    ----------
+    state
+        Keys a, k, cov (2x2), x_now, x_pre_sd, rate_phys_per_day [1/day],
+        exposures_per_day [1/day], tube_id, focal_spot.
+    threshold, threshold_sd
+        End-of-life diameter loss and its spread [1].
+    params
+        Analysis parameters (n_samples, seed, workload_sd, max_rul_days).
+
+    Returns
+    -------
+    dict
+        rul_days_p10/p50/p90, rul_exposures_p10/p50/p90, p_end_of_life_30d/90d/180d, cdf (array
+        over :data:`CDF_HORIZONS_DAYS`), projection (DataFrame day offset -> loss quantiles),
+        samples_loss_now.
+    """
+    key = f"{state['tube_id']}|{state['focal_spot']}".encode()
+    seed = (params.seed + zlib.crc32(key)) % (2**32)  # stable across processes (no str hash)
+    rng = np.random.default_rng(seed)
+    n = params.n_samples
+    cov = np.asarray(state["cov"], float)
+    ak = rng.multivariate_normal([state["a"], state["k"]], cov, size=n, method="cholesky") \
+        if np.all(np.isfinite(cov)) else np.tile([state["a"], state["k"]], (n, 1))
+    a, k = ak[:, 0], ak[:, 1]
+    pre = rng.normal(0.0, 1.0, n) * state["x_pre_sd"]
+    loss_now = a + k * (state["x_now"] + pre)
+    d = rng.normal(threshold, max(threshold_sd, 1e-9), n)
+    d = np.maximum(d, 0.005)
+    w = np.exp(rng.normal(0.0, params.workload_sd, n))
+    r = np.maximum(k, MIN_K) * state["rate_phys_per_day"] * w
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = np.where(loss_now >= d, 0.0, (d - loss_now) / r)
+    t = np.where(np.isfinite(t), t, np.inf)
+    t = np.minimum(t, params.max_rul_days)
+    q = np.quantile(t, [0.1, 0.5, 0.9])
+    epd = float(state["exposures_per_day"])
+    horizons = np.asarray(CDF_HORIZONS_DAYS, float)
+    cdf = (t[None, :] <= horizons[:, None]).mean(axis=1)
+    steps = np.arange(0, PROJECTION_SPAN_DAYS + 1, PROJECTION_STEP_DAYS, dtype=float)
+    path = loss_now[None, :] + r[None, :] * steps[:, None]
+    pq = np.quantile(path, [0.1, 0.5, 0.9], axis=1)
+    return {
+        "rul_days_p10": float(q[0]),
+        "rul_days_p50": float(q[1]),
+        "rul_days_p90": float(q[2]),
+        "rul_exposures_p10": float(q[0] * epd),
+        "rul_exposures_p50": float(q[1] * epd),
+        "rul_exposures_p90": float(q[2] * epd),
+        "p_end_of_life_30d": float((t <= 30).mean()),
+        "p_end_of_life_90d": float((t <= 90).mean()),
+        "p_end_of_life_180d": float((t <= 180).mean()),
+        "cdf": cdf,
+        "projection": pd.DataFrame(
+            {"offset_days": steps, "diameter_loss_pct_p10": 100 * pq[0],
+             "diameter_loss_pct_p50": 100 * pq[1], "diameter_loss_pct_p90": 100 * pq[2]}
+        ),
+    }
+
+
+def _empty_frames() -> dict[str, pd.DataFrame]:
+    return {
+        "summary": pd.DataFrame(),
+        "drift": pd.DataFrame(columns=["tube_id", "focal_spot", "tube_current_ma", "day",
+                                       "filament_current_norm_a", "fitted_a", "segment", "series"]),
+        "diameter": pd.DataFrame(columns=["tube_id", "focal_spot", "day", "diameter_loss_pct",
+                                          "diameter_loss_pct_lo", "diameter_loss_pct_hi"]),
+        "changepoints": pd.DataFrame(columns=["tube_id", "focal_spot", "tube_current_ma", "day", "kind",
+                                              "jump_pct"]),
+    }
+
+
+def analyse_tube(
+    daily: pd.DataFrame,
+    tube_meta: dict[str, Any],
+    params: HealthParams | None = None,
+    *,
+    calibrations: pd.DataFrame | None = None,
+    events: pd.DataFrame | None = None,
+    physics=None,
+) -> dict[str, Any]:
+    """Analyse one tube: everything from its daily statistics to its forecast.
+
+    Parameters
+    ----------
+    daily
+        Rows of ``sql.DAILY_SQL`` for this tube (all focal spots and stations).
+    tube_meta
+        tube_id, system_id, site, installed_at_utc, as_of (analysis date, a day boundary),
+        removal_reason (None while in service).
+    params
+        :class:`HealthParams`.
+    calibrations, events
+        This tube's rows of ``sql.CALIBRATION_SQL`` / ``sql.EVENTS_SQL``.
+    physics
+        Physics adapter (default :func:`degradation.default_physics`).
+
+    Returns
+    -------
+    dict
+        ``summary`` (one row per focal spot), ``drift``, ``diameter``, ``changepoints``
+        (DataFrames), ``states`` (list of dicts for re-forecasting with another threshold),
+        ``projections`` (dict focal_spot -> DataFrame), ``cdfs`` (dict focal_spot -> array).
+    """
+    p = params or HealthParams()
+    phys = physics or default_physics()
+    out = _empty_frames()
+    tube_id = str(tube_meta["tube_id"])
+    as_of = pd.Timestamp(tube_meta["as_of"])
+    installed = pd.Timestamp(tube_meta["installed_at_utc"]).normalize()
+    calib = calibrations if calibrations is not None else pd.DataFrame()
+    ev = events if events is not None else pd.DataFrame(columns=["tube_id", "category", "day", "n_events"])
+    rows, drifts, diams, cps, states = [], [], [], [], []
+    projections, cdfs = {}, {}
+    daily = daily.assign(day=pd.to_datetime(daily["day"]))
+    for focal in sorted(daily["focal_spot"].dropna().unique()):
+        dfs = daily[daily["focal_spot"] == focal]
+        kvm = drift.fit_kv_model(dfs, focal, baseline_days=p.baseline_days)
+        norm = drift.normalise(dfs, kvm)
+        # --- change points on the focal spot's combined series, shifts removed per station
+        base = norm[norm["in_baseline"]]
+        wb = 1.0 / base["se_log"] ** 2
+        c0 = (base["log_i_norm"] * wb).groupby(base["tube_current_ma"]).sum() / wb.groupby(
+            base["tube_current_ma"]).sum()
+        resid = norm.assign(r=norm["log_i_norm"] - norm["tube_current_ma"].map(c0),
+                            w=1.0 / norm["se_log"] ** 2).dropna(subset=["r"])
+        comb_r = resid.assign(wr=resid["w"] * resid["r"]).groupby("t_days")[["wr", "w"]].sum()
+        break_t: list[float] = []
+        if len(comb_r):
+            tt = comb_r.index.to_numpy(float)
+            yy = (comb_r["wr"] / comb_r["w"]).to_numpy()
+            idx = segments.detect_breaks(tt, yy, penalty_c=p.penalty_c, min_size=p.min_segment_days)
+            break_t = [float(tt[i]) for i in idx]
+        corr_parts, last_break = [], None
+        for ma, g in norm.groupby("tube_current_ma", sort=True):
+            g = g.sort_values("day")
+            seg, fitted, corrected, brk = segments.apply_breaks(
+                g["t_days"].to_numpy(), g["log_i_norm"].to_numpy(), break_t)
+            corr_parts.append(g.assign(log_i_corr=corrected))
+            drifts.append(pd.DataFrame({
+                "tube_id": tube_id, "focal_spot": focal, "tube_current_ma": float(ma),
+                "day": g["day"].to_numpy(), "filament_current_norm_a": g["filament_current_norm_a"].to_numpy(),
+                "fitted_a": np.exp(fitted), "segment": seg, "series": "exposures"}))
+            for b in brk.itertuples(index=False):
+                day = kvm.baseline_start + pd.Timedelta(days=float(b.t))
+                kind = b.kind
+                if len(calib) and kind != "possible_tube_swap":
+                    cd = pd.to_datetime(calib.loc[calib["focal_spot"] == focal, "day"])
+                    if len(cd) and np.min(np.abs((cd - day).dt.days)) <= 7:
+                        kind = "recalibration"
+                cps.append({"tube_id": tube_id, "focal_spot": focal, "tube_current_ma": float(ma),
+                            "day": day, "kind": kind, "jump_pct": 100.0 * float(np.expm1(b.jump))})
+        if break_t:
+            last_break = kvm.baseline_start + pd.Timedelta(days=max(break_t))
+        if len(calib):
+            cn = drift.normalise_calibrations(calib[calib["focal_spot"] == focal], kvm)
+            if len(cn):
+                drifts.append(cn.assign(tube_id=tube_id, focal_spot=focal, fitted_a=np.nan, segment=-1,
+                                        series="calibration"))
+        corr = pd.concat(corr_parts, ignore_index=True) if corr_parts else pd.DataFrame(
+            columns=["tube_current_ma", "day", "log_i_corr", "se_log"])
+        st = station_losses(corr, focal, kvm.kv_ref, kvm.baseline_end, phys) if len(corr) else pd.DataFrame(
+            columns=["tube_current_ma", "day", "current_ratio", "loss", "loss_se"])
+        comb = combine_stations(st)
+        wear = wear_index(dfs, focal, phys)
+        # --- wear before the first logged day: first `recent_days` of workload x gap
+        first_day = pd.Timestamp(dfs["day"].min())
+        gap_days = max(0.0, float((first_day - installed).days))
+        early = wear[wear["day"] < first_day + pd.Timedelta(days=p.recent_days)]
+        early_span = max(1.0, min(float(p.recent_days), float((wear["day"].max() - first_day).days) + 1.0))
+        x_pre = gap_days * float(early["wear"].sum()) / early_span if gap_days > 14 else 0.0
+        x_pre_sd = 0.5 * x_pre
+        # --- current segment, extended back to min_fit_days
+        fit_from = None
+        if last_break is not None and len(comb):
+            fit_from = min(last_break, as_of - pd.Timedelta(days=p.min_fit_days))
+        fit = fit_wear(comb, wear, fit_from, x_pre, x_pre_sd, p.prior_k_sd, as_of,
+                       prior_k_mean=p.prior_k_mean)
+        loss_now, loss_se = fit.loss_now()
+        # --- recent workload per calendar day
+        recent_start = as_of - pd.Timedelta(days=p.recent_days)
+        rec = wear[wear["day"] >= recent_start]
+        span_rec = max(1.0, min(float(p.recent_days), float((as_of - first_day).days)))
+        rate_phys = float(rec["wear"].sum()) / span_rec
+        epd = float(rec["n_exposures"].sum()) / span_rec
+        flat_beta, flat_cov = posterior(fit.data_precision, fit.data_rhs, 1.0, 1e6)
+        state = {"tube_id": tube_id, "focal_spot": focal, "a": fit.a, "k": fit.k, "cov": fit.cov,
+                 "x_now": fit.x_now, "x_b": fit.x_b, "x_pre_sd": fit.x_pre_sd,
+                 "rate_phys_per_day": rate_phys,
+                 "exposures_per_day": epd, "loss_now": loss_now, "loss_se": loss_se,
+                 "n_days": fit.n_days, "span_days": fit.span_days, "dispersion": fit.dispersion,
+                 "data_precision": fit.data_precision, "data_rhs": fit.data_rhs,
+                 "flat_k": float(flat_beta[1]) if fit.n_days >= 3 else float("nan"),
+                 "flat_k_se": float(np.sqrt(flat_cov[1, 1])) if fit.n_days >= 3 else float("nan"),
+                 "wiener_mu": float("nan"), "wiener_sigma": float("nan")}
+        fc = forecast_from_state(state, p.eol_diameter_loss, p.eol_diameter_loss_sd, p)
+        # --- Wiener / inverse-Gaussian cross-check on weekly means of the loss index
+        wien_p50, wien_p180 = float("nan"), float("nan")
+        if len(comb) >= 10:
+            cw = comb[comb["day"] >= fit_from] if fit_from is not None else comb
+            wk = cw.assign(w=(cw["day"] - cw["day"].min()).dt.days // 7).groupby("w").agg(
+                t=("day", lambda s: float((s.mean() - cw["day"].min()).days)), x=("loss", "mean"))
+            mu, sig = firstpassage.fit_wiener(wk["t"], wk["x"])
+            state["wiener_mu"], state["wiener_sigma"] = mu, sig
+            if np.isfinite(mu) and np.isfinite(sig) and sig > 0:
+                dist = p.eol_diameter_loss - loss_now
+                wien_p50 = float(min(firstpassage.ig_ppf(0.5, mu, sig, dist), p.max_rul_days))
+                wien_p180 = float(firstpassage.ig_cdf(180.0, mu, sig, dist))
+        sig_info = tube_signatures(dfs, ev, as_of, p.signatures)
+        # --- drop of the busiest station's current since its baseline (for the reason line)
+        drop_pct, drop_ma = float("nan"), float("nan")
+        if len(st):
+            busiest = dfs.groupby("tube_current_ma")["n_current"].sum().idxmax()
+            s1 = st[st["tube_current_ma"] == busiest]
+            if len(s1):
+                last = s1[s1["day"] >= s1["day"].max() - pd.Timedelta(days=14)]
+                drop_pct = 100.0 * (1.0 - float(np.median(last["current_ratio"])))
+                drop_ma = float(busiest)
+        n_cur_days = int(comb.shape[0])
+        rows.append({
+            "tube_id": tube_id, "system_id": tube_meta.get("system_id"), "site": tube_meta.get("site"),
+            "focal_spot": focal,
+            "diameter_loss_pct": 100.0 * loss_now, "diameter_loss_pct_se": 100.0 * loss_se,
+            **{k: fc[k] for k in ("rul_days_p10", "rul_days_p50", "rul_days_p90", "rul_exposures_p10",
+                                  "rul_exposures_p50", "rul_exposures_p90", "p_end_of_life_30d",
+                                  "p_end_of_life_90d", "p_end_of_life_180d")},
+            "arc_rate_per_1000": sig_info["arc_rate_per_1000"],
+            "arc_rate_recent_per_1000": sig_info["arc_rate_recent_per_1000"],
+            "arc_trend_p": sig_info["arc_trend_p"],
+            "ma_miss_fraction": sig_info["ma_miss_fraction"],
+            "resistance_change_pct": sig_info["resistance_change_pct"],
+            "signature_level": sig_info["level"],
+            "signature_reasons": "; ".join(sig_info["reasons"]),
+            "signals_list": ",".join(sig_info["signals"]),
+            "unforeseeable": bool(sig_info["unforeseeable"]),
+            "current_drop_pct": drop_pct, "current_drop_station_ma": drop_ma,
+            "wear_factor_k": fit.k, "wear_factor_k_se": float(np.sqrt(fit.cov[1, 1])),
+            "history_days": fit.span_days, "days_with_current": n_cur_days,
+            "pre_log_gap_days": gap_days, "kv_model": kvm.source, "kv_slope_per_kv": kvm.slope_per_kv,
+            "rul_days_p50_wiener": wien_p50, "p_end_of_life_180d_wiener": wien_p180,
+            "exposures_per_day": epd,
+        })
+        states.append(state)
+        projections[focal] = fc["projection"]
+        cdfs[focal] = fc["cdf"]
+        if len(comb):
+            z = 1.2815516  # standard normal 90 % quantile: lo/hi are the P10/P90 band
+            diams.append(pd.DataFrame({
+                "tube_id": tube_id, "focal_spot": focal, "day": comb["day"].to_numpy(),
+                "loss_since_baseline_pct": 100 * comb["loss"].to_numpy(),
+                "loss_since_baseline_pct_lo": 100 * (comb["loss"].to_numpy() - z * comb["loss_se"].to_numpy()),
+                "loss_since_baseline_pct_hi": 100 * (comb["loss"].to_numpy() + z * comb["loss_se"].to_numpy()),
+                "diameter_loss_pct": 100 * (comb["loss"].to_numpy() + fit.k * fit.x_b),
+                "diameter_loss_pct_lo": 100 * (comb["loss"].to_numpy() + fit.k * fit.x_b - z * comb["loss_se"].to_numpy()),
+                "diameter_loss_pct_hi": 100 * (comb["loss"].to_numpy() + fit.k * fit.x_b + z * comb["loss_se"].to_numpy()),
+            }))
+    out["summary"] = pd.DataFrame(rows)
+    if drifts:
+        out["drift"] = pd.concat(drifts, ignore_index=True)
+    if diams:
+        out["diameter"] = pd.concat(diams, ignore_index=True)
+    if cps:
+        out["changepoints"] = pd.DataFrame(cps)
+    out["states"] = states
+    out["projections"] = projections
+    out["cdfs"] = cdfs
+    return out
+
+
+def update_state(state: dict[str, Any], prior_k_mean: float, prior_k_sd: float) -> dict[str, Any]:
+    """Copy of a state refitted with another prior on k (e.g. the fleet's own, empirical Bayes)."""
+    beta, cov = posterior(state["data_precision"], state["data_rhs"], prior_k_mean, prior_k_sd)
+    new = dict(state, a=float(beta[0]), k=float(beta[1]), cov=cov)
+    g = np.array([1.0, new["x_now"]])
+    new["loss_now"] = float(new["a"] + new["k"] * new["x_now"])
+    new["loss_se"] = float(np.sqrt(max(float(g @ cov @ g) + (new["k"] * new["x_pre_sd"]) ** 2, 0.0)))
+    return new
+
+
+def wiener_cross_check(state: dict[str, Any], threshold: float, max_rul_days: float) -> tuple[float, float]:
+    """Median first-passage time [days] and P(T <= 180 d) of the Wiener model of the loss index."""
+    mu, sig = state.get("wiener_mu", np.nan), state.get("wiener_sigma", np.nan)
+    if not (np.isfinite(mu) and np.isfinite(sig) and sig > 0):
+        return float("nan"), float("nan")
+    dist = threshold - state["loss_now"]
+    return (float(min(firstpassage.ig_ppf(0.5, mu, sig, dist), max_rul_days)),
+            float(firstpassage.ig_cdf(180.0, mu, sig, dist)))
+
+
+def analyse_tube_task(args: tuple) -> dict[str, Any]:
+    """Process-pool entry point: ``analyse_tube(*args)`` with keyword extras."""
+    daily, meta, params, calib, events = args
+    return analyse_tube(daily, meta, params, calibrations=calib, events=events)
+
+
+def fit_state_for(fit: WearFit) -> dict[str, Any]:  # pragma: no cover - convenience
+    """The state dict of a :class:`WearFit` (for callers building states by hand)."""
+    return {"a": fit.a, "k": fit.k, "cov": fit.cov, "x_now": fit.x_now, "x_pre_sd": fit.x_pre_sd}

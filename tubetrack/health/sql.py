@@ -1,0 +1,198 @@
+"""Aggregation SQL for tube health: the one place where exposure rows are touched.
+
+Everything downstream works on per tube x focal spot x mA station x day statistics. The queries
+are plain strings with bound parameters (``?``) and use only standard aggregate functions
+(``count``, ``sum``, ``percentile_cont ... WITHIN GROUP``, ``ln``), so the same text can later run
+as Spark SQL over the lake (replace ``?`` by literals there). The robust scale of filament current
+is the inter-quartile range (IQR / 1.349 estimates sigma for normal data), which, unlike the median
+absolute deviation, is a single-pass standard aggregate.
+
+References
+----------
+Rousseeuw P.J., Croux C., "Alternatives to the median absolute deviation", Journal of the
+American Statistical Association 88 (1993) 1273-1283 (IQR and MAD as robust scales; the
+normal-consistency factors 1.349 and 1.4826).
+"""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:  # pragma: no cover
+    import duckdb
+    import pandas as pd
+
+#: Relative miss of the measured against the set tube current that counts as a regulation miss.
+MA_MISS_TOLERANCE = 0.10  # common practice (acceptance tests often allow +-10 % to +-20 % of set mA)
+
+#: Per tube x focal spot x mA station x day statistics of the exposures before ``as_of``.
+#: Parameters: as_of (TIMESTAMP or NULL) twice, the regulation-miss tolerance.
+DAILY_SQL = """
+WITH x AS (
+    SELECT
+        tube_id,
+        focal_spot,
+        tube_current_ma,
+        CAST(timestamp_utc AS DATE) AS day,
+        tube_voltage_kv,
+        filament_current_a,
+        CASE WHEN filament_current_a > 0 THEN ln(filament_current_a) END AS log_i,
+        filament_voltage_v,
+        CASE WHEN filament_current_a > 0 AND filament_voltage_v > 0
+             THEN filament_voltage_v / filament_current_a END AS resistance_ohm,
+        COALESCE(exposure_time_s, exposure_mas / NULLIF(tube_current_ma, 0)) AS exposure_time_s,
+        COALESCE(exposure_mas, tube_current_ma * exposure_time_s) AS exposure_mas,
+        prep_time_s,
+        arc_count,
+        tube_current_measured_ma
+    FROM v_exposures
+    WHERE tube_id IS NOT NULL
+      AND (CAST(? AS TIMESTAMP) IS NULL OR timestamp_utc < CAST(? AS TIMESTAMP))
+)
+SELECT
+    tube_id,
+    focal_spot,
+    tube_current_ma,
+    day,
+    count(*) AS n_exposures,
+    count(log_i) AS n_current,
+    percentile_cont(0.5) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_med_a,
+    percentile_cont(0.25) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_q1_a,
+    percentile_cont(0.75) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_q3_a,
+    percentile_cont(0.5) WITHIN GROUP (ORDER BY tube_voltage_kv) AS tube_voltage_med_kv,
+    sum(CASE WHEN log_i IS NOT NULL THEN tube_voltage_kv END) AS sum_kv,
+    sum(CASE WHEN log_i IS NOT NULL THEN tube_voltage_kv * tube_voltage_kv END) AS sum_kv2,
+    sum(log_i) AS sum_log_i,
+    sum(log_i * tube_voltage_kv) AS sum_kv_log_i,
+    sum(log_i * log_i) AS sum_log_i2,
+    count(resistance_ohm) AS n_voltage,
+    percentile_cont(0.5) WITHIN GROUP (ORDER BY resistance_ohm) AS filament_resistance_med_ohm,
+    COALESCE(sum(exposure_time_s), 0) AS exposure_time_sum_s,
+    COALESCE(sum(prep_time_s), 0) AS prep_time_sum_s,
+    COALESCE(sum(exposure_mas), 0) AS exposure_mas_sum,
+    COALESCE(sum(arc_count), 0) AS arc_sum,
+    count(tube_current_measured_ma) AS n_measured,
+    count(CASE WHEN abs(tube_current_measured_ma - tube_current_ma)
+                    > ? * tube_current_ma THEN 1 END) AS n_ma_miss
+FROM x
+GROUP BY tube_id, focal_spot, tube_current_ma, day
+ORDER BY tube_id, focal_spot, tube_current_ma, day
+"""
+
+#: Per tube x focal spot x station x day statistics of exported filament tables (calibrations).
+CALIBRATION_SQL = """
+WITH c AS (
+    SELECT COALESCE(c.tube_id, t.tube_id) AS tube_id, c.*  EXCLUDE (tube_id)
+    FROM calibrations c
+    LEFT JOIN tubes t
+      ON c.tube_id IS NULL
+     AND t.system_id = c.system_id
+     AND c.timestamp_utc >= t.installed_at_utc
+     AND (t.removed_at_utc IS NULL OR c.timestamp_utc < t.removed_at_utc)
+    WHERE (CAST(? AS TIMESTAMP) IS NULL OR c.timestamp_utc < CAST(? AS TIMESTAMP))
+)
+SELECT
+    tube_id,
+    focal_spot,
+    tube_current_ma,
+    CAST(timestamp_utc AS DATE) AS day,
+    count(*) AS n_points,
+    percentile_cont(0.5) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_med_a,
+    percentile_cont(0.5) WITHIN GROUP (ORDER BY tube_voltage_kv) AS tube_voltage_med_kv,
+    sum(tube_voltage_kv) AS sum_kv,
+    sum(tube_voltage_kv * tube_voltage_kv) AS sum_kv2,
+    sum(ln(filament_current_a)) AS sum_log_i,
+    sum(ln(filament_current_a) * tube_voltage_kv) AS sum_kv_log_i
+FROM c
+WHERE tube_id IS NOT NULL AND filament_current_a > 0
+GROUP BY tube_id, focal_spot, tube_current_ma, day
+ORDER BY tube_id, focal_spot, tube_current_ma, day
+"""
+
+#: Fault events per tube x category x day.
+EVENTS_SQL = """
+WITH e AS (
+    SELECT COALESCE(e.tube_id, t.tube_id) AS tube_id, e.category, e.timestamp_utc
+    FROM events e
+    LEFT JOIN tubes t
+      ON e.tube_id IS NULL
+     AND t.system_id = e.system_id
+     AND e.timestamp_utc >= t.installed_at_utc
+     AND (t.removed_at_utc IS NULL OR e.timestamp_utc < t.removed_at_utc)
+    WHERE (CAST(? AS TIMESTAMP) IS NULL OR e.timestamp_utc < CAST(? AS TIMESTAMP))
+)
+SELECT tube_id, category, CAST(timestamp_utc AS DATE) AS day, count(*) AS n_events
+FROM e
+WHERE tube_id IS NOT NULL
+GROUP BY tube_id, category, day
+ORDER BY tube_id, category, day
+"""
+
+#: Tubes installed before ``as_of``; removals on or after ``as_of`` are hidden (not yet known).
+TUBES_SQL = """
+SELECT
+    t.tube_id,
+    t.system_id,
+    s.site,
+    t.model_label,
+    t.installed_at_utc,
+    CASE WHEN CAST(? AS TIMESTAMP) IS NULL OR t.removed_at_utc < CAST(? AS TIMESTAMP)
+         THEN t.removed_at_utc END AS removed_at_utc,
+    CASE WHEN CAST(? AS TIMESTAMP) IS NULL OR t.removed_at_utc < CAST(? AS TIMESTAMP)
+         THEN t.removal_reason END AS removal_reason
+FROM tubes t
+LEFT JOIN systems s USING (system_id)
+WHERE CAST(? AS TIMESTAMP) IS NULL OR t.installed_at_utc < CAST(? AS TIMESTAMP)
+ORDER BY t.tube_id
+"""
+
+#: Last exposure time before ``as_of`` (the effective analysis date when --as-of is not given).
+DATA_END_SQL = """
+SELECT max(timestamp_utc) FROM exposures
+WHERE CAST(? AS TIMESTAMP) IS NULL OR timestamp_utc < CAST(? AS TIMESTAMP)
+"""
+
+
+def _twice(as_of: datetime | None) -> list[Any]:
+    return [as_of, as_of]
+
+
+def load_daily(
+    con: duckdb.DuckDBPyConnection,
+    as_of: datetime | None = None,
+    ma_miss_tolerance: float = MA_MISS_TOLERANCE,
+) -> pd.DataFrame:
+    """Per tube x focal spot x mA station x day exposure statistics (one SQL query).
+
+    Parameters
+    ----------
+    con
+        Open store.
+    as_of
+        Only exposures strictly before this time (UTC) count; ``None`` = all.
+    ma_miss_tolerance
+        Relative deviation of measured from set tube current counted as a miss [1].
+    """
+    return con.execute(DAILY_SQL, [*_twice(as_of), float(ma_miss_tolerance)]).df()
+
+
+def load_calibrations(con: duckdb.DuckDBPyConnection, as_of: datetime | None = None) -> pd.DataFrame:
+    """Per tube x focal spot x station x day statistics of calibration tables before ``as_of``."""
+    return con.execute(CALIBRATION_SQL, _twice(as_of)).df()
+
+
+def load_events(con: duckdb.DuckDBPyConnection, as_of: datetime | None = None) -> pd.DataFrame:
+    """Fault event counts per tube x category x day before ``as_of``."""
+    return con.execute(EVENTS_SQL, _twice(as_of)).df()
+
+
+def load_tubes(con: duckdb.DuckDBPyConnection, as_of: datetime | None = None) -> pd.DataFrame:
+    """Tubes known at ``as_of`` with removals after ``as_of`` hidden."""
+    return con.execute(TUBES_SQL, [as_of] * 6).df()
+
+
+def data_end(con: duckdb.DuckDBPyConnection, as_of: datetime | None = None) -> datetime | None:
+    """Time of the last exposure before ``as_of`` (UTC), ``None`` for an empty store."""
+    row = con.execute(DATA_END_SQL, _twice(as_of)).fetchone()
+    return row[0] if row else None
