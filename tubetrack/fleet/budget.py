@@ -94,7 +94,7 @@ def load_price_list(path: str | Path) -> pd.DataFrame:
         i = int(np.flatnonzero(bad.to_numpy())[0])
         raise InputError(
             f"price list {p}: the price of {frame['model_label'].iloc[i]!r} is "
-            f"{frame['price'].iloc[i]!r}, not a positive number. Fix that row."
+            f"{str(frame['price'].iloc[i])!r}, not a positive number. Fix that row."
         )
     frame = frame.assign(price=price.astype(float))
     if frame["model_label"].duplicated().any():
