@@ -276,7 +276,7 @@ def _missing_msg(kind: Kind, name: str, src: _Source, profile: Profile | None) -
         else f'rename the file\'s column to "{name}", or map it with a profile ([columns] {name} = "...")'
     )
     return (
-        f'missing required column "{name}" for a {kind.name} file; columns found: '
+        f'missing required column "{name}" for the {kind.name} table; columns found: '
         f"{_list(src.columns)}. Add the column, or {hint}."
     )
 
