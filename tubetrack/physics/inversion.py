@@ -36,8 +36,13 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
+from tubetrack.constants import BOLTZMANN_EV_K
 from tubetrack.errors import AnalysisError, InputError
-from tubetrack.physics.filament import FilamentSpec, filament_current_for_tube_current_a
+from tubetrack.physics.filament import (
+    FilamentSpec,
+    filament_current_for_tube_current_a,
+    filament_temperature_for_tube_current_k,
+)
 from tubetrack.physics.tungsten import _asarray, _out
 
 __all__ = [
@@ -50,6 +55,7 @@ __all__ = [
 ]
 
 _H = 1e-4  # relative step for numerical derivatives in ln r
+_DT_K = 10.0  # temperature step for the local quadratic of ln sqrt(W/rho) [K]
 
 
 def current_ratio_for_diameter_ratio(
@@ -71,18 +77,56 @@ def inversion_exponent(
     return _out(np.log(up / dn) / (2 * _H))
 
 
+def _h_current(t_k: Any) -> Any:
+    """sqrt(W/rho) of the heat balance at T (thermal eq. 1 without geometry)."""
+    from tubetrack.physics import thermal
+
+    return np.interp(t_k, thermal._TG, thermal._H_I, left=np.nan, right=np.nan)
+
+
 def _solve_ratio(spec: FilamentSpec, q: Any, ma: Any, kv: Any) -> tuple[Any, Any]:
-    """Solve q = F(r)/F(1) for r by a fixed-slope Newton iteration in ln r (vectorised)."""
-    f1 = _asarray(filament_current_for_tube_current_a(spec, ma, kv, 1.0))
-    n0 = _asarray(inversion_exponent(spec, ma, kv, 1.0))
+    """Solve q = I_f(r)/I_f(1) for r (vectorised, fast path of the full forward model).
+
+    With the baseline temperature T0 (full forward model, once), q(r) = r^1.5 h(T_r) / h(T0)
+    where J(T_r) = J(T0) r^-a and h = sqrt(W/rho): geometry, end losses and sensor gain cancel.
+    Fixed-slope Newton in ln r (slope from a central difference at r = 1), 6 steps.
+    """
+    t0 = _asarray(filament_temperature_for_tube_current_k(spec, ma, kv, 1.0))
+    a = spec.emitting_area_diameter_exponent
+    b = spec.work_function_ev / BOLTZMANN_EV_K
+    # ln h(T) near T0 as a quadratic from three grid lookups (h is smooth; |T - T0| < 50 K for
+    # r > 0.7, where the quadratic's error in ln q is < 1e-6).
     with np.errstate(divide="ignore", invalid="ignore"):
+        lh0, lhp, lhm = (np.log(_h_current(t0 + dt)) for dt in (0.0, _DT_K, -_DT_K))
+    s1 = (lhp - lhm) / (2 * _DT_K)
+    s2 = (lhp - 2 * lh0 + lhm) / _DT_K**2
+    c0 = 2.0 * np.log(t0) - b / t0
+
+    def temperature(ln_r: Any) -> Any:
+        # T_r from 2 ln T - b/T = 2 ln T0 - b/T0 - a ln r (Richardson-Dushman ratio), Newton
+        # from T0: two steps reach < 1e-3 K for |T - T0| < 50 K.
+        c = c0 - a * ln_r
+        t = t0
+        for _ in range(2):
+            t = t - (2.0 * np.log(t) - b / t - c) / (2.0 / t + b / t**2)
+        return t
+
+    def ln_q_fast(ln_r: Any) -> Any:
+        dt = temperature(ln_r) - t0
+        return 1.5 * ln_r + dt * (s1 + 0.5 * s2 * dt)
+
+    def ln_q_exact(ln_r: Any) -> Any:
+        return 1.5 * ln_r + np.log(_h_current(temperature(ln_r))) - lh0
+
+    with np.errstate(divide="ignore", invalid="ignore"):
+        n0 = (ln_q_fast(np.full_like(t0, _H)) - ln_q_fast(np.full_like(t0, -_H))) / (2 * _H)
         ln_q = np.log(np.where(q > 0, q, np.nan))
         ln_r = ln_q / n0
-        for _ in range(6):
-            fr = _asarray(filament_current_for_tube_current_a(spec, ma, kv, np.exp(ln_r)))
-            ln_r = ln_r - (np.log(fr / f1) - ln_q) / n0
-    r = np.exp(ln_r)
-    with np.errstate(divide="ignore", invalid="ignore"):
+        for _ in range(4):
+            ln_r = ln_r - (ln_q_fast(ln_r) - ln_q) / n0
+        for _ in range(2):  # polish on the exact grid
+            ln_r = ln_r - (ln_q_exact(ln_r) - ln_q) / n0
+        r = np.exp(ln_r)
         n_eff = np.where(np.abs(ln_r) > 1e-9, ln_q / ln_r, n0)
     return r, n_eff
 
@@ -132,9 +176,8 @@ def invert_current_ratio(
     # Model error: the full spread between the emitting-area assumptions (a = 1 vs a = 0: either
     # may hold, so one standard error spans the whole gap) and half the spread for T0 (area x2, /2).
     se_model = np.sqrt((r - r_a) ** 2 + (0.5 * np.maximum(np.abs(r - r_hi), np.abs(r - r_lo))) ** 2)
-    n_local = _asarray(inversion_exponent(spec, ma, kv, r))
     with np.errstate(divide="ignore", invalid="ignore"):
-        se_meas = r * se_q / (q * n_local)
+        se_meas = r * se_q / (q * n)
     se = np.sqrt(se_meas**2 + se_model**2)
     return pd.DataFrame(
         {
