@@ -876,6 +876,14 @@ def _ingest_in_txn(
         import duckdb
 
         if isinstance(exc, duckdb.Error):
+            if "invalid state" in str(exc):
+                raise FileFailure(
+                    shown, None,
+                    "the CSV reader cannot follow the file's structure, typically mixed line "
+                    "endings (CRLF and LF lines in one file) or a quote that is never closed; "
+                    "the whole file is rejected. Save it with one kind of line ending and "
+                    "balanced quotes.",
+                ) from None
             raise FileFailure(shown, None, f"cannot be read ({_short(exc)}). Check the file's format, delimiter and encoding.") from None
         raise
     join, line = _line_expr(con, src, scan)

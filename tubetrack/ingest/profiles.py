@@ -169,7 +169,7 @@ def parse_profile(data: dict[str, Any], path: str) -> Profile:
         raise _fail(path, "columns", cols_raw, "must be a table [columns]")
     for key, value in cols_raw.items():
         if key not in names:
-            raise _fail(path, f"columns.{key}", value, f"is not a {kind} column", names)
+            raise _fail(path, f"columns.{key}", value, f"is not a column of {kind}", names)
         if isinstance(value, list):
             if spec.field(key).type != "timestamp" or not value or len(value) > 3:
                 raise _fail(
@@ -183,7 +183,7 @@ def parse_profile(data: dict[str, Any], path: str) -> Profile:
     units: dict[str, str] = {}
     for key, value in dict(data.get("units", {})).items():
         if key not in names:
-            raise _fail(path, f"units.{key}", value, f"is not a {kind} column", names)
+            raise _fail(path, f"units.{key}", value, f"is not a column of {kind}", names)
         fam = spec.field(key).unit
         if fam is None:
             raise _fail(path, f"units.{key}", value, "names a column without a unit")
@@ -196,7 +196,7 @@ def parse_profile(data: dict[str, Any], path: str) -> Profile:
     values: dict[str, dict[str, str]] = {}
     for key, mapping in dict(data.get("values", {})).items():
         if key not in names:
-            raise _fail(path, f"values.{key}", mapping, f"is not a {kind} column", names)
+            raise _fail(path, f"values.{key}", mapping, f"is not a column of {kind}", names)
         if not isinstance(mapping, dict):
             raise _fail(path, f"values.{key}", mapping, "must be a table of code = value")
         f = spec.field(key)
@@ -211,7 +211,7 @@ def parse_profile(data: dict[str, Any], path: str) -> Profile:
     constants: dict[str, str] = {}
     for key, value in dict(data.get("constants", {})).items():
         if key not in names:
-            raise _fail(path, f"constants.{key}", value, f"is not a {kind} column", names)
+            raise _fail(path, f"constants.{key}", value, f"is not a column of {kind}", names)
         if isinstance(value, bool):
             value = "true" if value else "false"
         constants[key] = _as_str(path, f"constants.{key}", value)
@@ -239,7 +239,7 @@ def parse_profile(data: dict[str, Any], path: str) -> Profile:
         for g in rx.groupindex:
             if g not in names:
                 raise _fail(
-                    path, "filename.pattern", pattern, f"captures group {g!r}, not a {kind} column",
+                    path, "filename.pattern", pattern, f"captures group {g!r}, not a column of {kind}",
                     names,
                 )
 
