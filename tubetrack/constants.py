@@ -41,13 +41,21 @@ STANDARD_ATMOSPHERE_PA: float = _sc.atm
 #: Theoretical Richardson constant A0 = 4 pi m_e e k^2 / h^3 [A m^-2 K^-2]
 #: (Dushman 1923; IUPAC Gold Book "thermionic work function" prints 1.202e6).
 RICHARDSON_A0_A_M2_K2: float = (
-    4.0 * math.pi * ELECTRON_MASS_KG * ELEMENTARY_CHARGE_C * BOLTZMANN_J_K**2 / PLANCK_J_S**3
+    4.0
+    * math.pi
+    * ELECTRON_MASS_KG
+    * ELEMENTARY_CHARGE_C
+    * BOLTZMANN_J_K**2
+    / PLANCK_J_S**3
 )
 
 #: Child-Langmuir planar-diode constant (4 eps0 / 9) sqrt(2 e / m_e) [A V^-1.5]
 #: (Child 1911, Phys. Rev. 32:492; Langmuir 1913, Phys. Rev. 2:450). J = K V^1.5 / d^2.
 CHILD_LANGMUIR_K_A_V15: float = (
-    4.0 * VACUUM_PERMITTIVITY_F_M / 9.0 * math.sqrt(2.0 * ELEMENTARY_CHARGE_C / ELECTRON_MASS_KG)
+    4.0
+    * VACUUM_PERMITTIVITY_F_M
+    / 9.0
+    * math.sqrt(2.0 * ELEMENTARY_CHARGE_C / ELECTRON_MASS_KG)
 )
 
 #: Molar mass of tungsten [kg mol^-1]: standard atomic weight 183.84(1) (IUPAC CIAAW 2013).

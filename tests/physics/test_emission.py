@@ -39,13 +39,21 @@ def test_child_langmuir_constant_recomputed():
     assert CHILD_LANGMUIR_K_A_V15 == pytest.approx(2.33395e-6, abs=5e-12)
     # planar diode 1 cm^2, 1 cm gap at 10 kV: I = K S/d^2 V^1.5
     p = child_langmuir_perveance_a_v15(1e-4, 1e-2)
-    assert float(child_langmuir_current_a(1e4, p)) == pytest.approx(k * 1e-4 / 1e-4 * 1e6, rel=1e-12)
+    assert float(child_langmuir_current_a(1e4, p)) == pytest.approx(
+        k * 1e-4 / 1e-4 * 1e6, rel=1e-12
+    )
 
 
 def test_richardson_dushman_tungsten_pair_at_2700_k():
     # Source: Wolf, Handbook of Ion Sources (CRC 1995): tungsten A = 60 A cm^-2 K^-2, phi = 4.54 eV.
     # REFERENCES.md: J(2700 K) = 1.47 A/cm^2 [C, 3 digits]; recomputed by hand with scipy's k.
-    expected = 60.0 * 2700**2 * math.exp(-4.54 / (sc.physical_constants["Boltzmann constant in eV/K"][0] * 2700))
+    expected = (
+        60.0
+        * 2700**2
+        * math.exp(
+            -4.54 / (sc.physical_constants["Boltzmann constant in eV/K"][0] * 2700)
+        )
+    )
     j_a_cm2 = float(richardson_dushman_current_density_a_m2(2700.0)) * 1e-4
     assert j_a_cm2 == pytest.approx(expected, rel=1e-12)
     assert j_a_cm2 == pytest.approx(1.47, abs=0.005)
@@ -55,7 +63,9 @@ def test_richardson_dushman_tungsten_pair_at_2700_k():
 def test_richardson_dushman_inverse_temperatures(j_a_cm2, t_k):
     # Source: REFERENCES.md [C]: 1 A/cm^2 at 2653 K, 5 A/cm^2 at 2863 K (A = 60, phi = 4.54),
     # printed to 1 K: tolerance 0.5 K.
-    assert float(richardson_dushman_temperature_k(j_a_cm2 * 1e4)) == pytest.approx(t_k, abs=0.5)
+    assert float(richardson_dushman_temperature_k(j_a_cm2 * 1e4)) == pytest.approx(
+        t_k, abs=0.5
+    )
 
 
 def test_schottky_lowering_coefficient():
@@ -78,21 +88,27 @@ def test_blend_inverse_round_trip_and_infeasible():
     i_sc = 0.8
     i_sat = saturation_current_for_tube_current_a(0.5, i_sc)
     assert float(blended_tube_current_a(i_sat, i_sc)) == pytest.approx(0.5, rel=1e-12)
-    assert np.isnan(saturation_current_for_tube_current_a(0.9, i_sc))  # above the space-charge limit
+    assert np.isnan(
+        saturation_current_for_tube_current_a(0.9, i_sc)
+    )  # above the space-charge limit
 
 
 @settings(max_examples=60, deadline=None)
 @given(st.floats(1500.0, 3400.0), st.floats(1.0, 300.0))
 def test_hotter_emits_more(t_k, dt_k):
     # Property: Richardson-Dushman is strictly increasing in temperature.
-    assert richardson_dushman_current_density_a_m2(t_k + dt_k) > richardson_dushman_current_density_a_m2(t_k)
+    assert richardson_dushman_current_density_a_m2(
+        t_k + dt_k
+    ) > richardson_dushman_current_density_a_m2(t_k)
 
 
 @settings(max_examples=60, deadline=None)
 @given(st.floats(1e2, 1e6))
 def test_rd_inverse_round_trip(j_a_m2):
     t = richardson_dushman_temperature_k(j_a_m2)
-    assert float(richardson_dushman_current_density_a_m2(t)) == pytest.approx(j_a_m2, rel=1e-9)
+    assert float(richardson_dushman_current_density_a_m2(t)) == pytest.approx(
+        j_a_m2, rel=1e-9
+    )
 
 
 @pytest.mark.parametrize(

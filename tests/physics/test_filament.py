@@ -29,8 +29,15 @@ from tubetrack.physics import (
 )
 
 
-@pytest.mark.parametrize(("t_k", "rho_uohm_cm", "w_w_cm2"), [(2000, 56.67, 23.9), (2500, 73.83, 69.2),
-                                                           (2700, 81.00, 98.8), (3000, 92.00, 160.1)])
+@pytest.mark.parametrize(
+    ("t_k", "rho_uohm_cm", "w_w_cm2"),
+    [
+        (2000, 56.67, 23.9),
+        (2500, 73.83, 69.2),
+        (2700, 81.00, 98.8),
+        (3000, 92.00, 160.1),
+    ],
+)
 def test_heat_balance_against_jones_rows(t_k, rho_uohm_cm, w_w_cm2):
     # Source: Jones 1926 Table I (rho and W). A bare straight wire (no end loss, full radiating
     # surface) must satisfy I^2 rho L / (pi d^2/4) = W pi d L. Tolerance 0.25 %: the printed
@@ -49,7 +56,13 @@ def test_current_scales_as_d_to_1_5_and_inverses_round_trip():
     i2 = filament_current_at_temperature_a(2600.0, 0.4e-3)
     assert float(i2 / i1) == pytest.approx(2**1.5, rel=1e-12)
     t = np.array([1500.0, 2200.0, 2700.0, 3200.0])
-    assert np.allclose(filament_temperature_for_current_k(filament_current_at_temperature_a(t, 3e-4), 3e-4), t, atol=0.01)
+    assert np.allclose(
+        filament_temperature_for_current_k(
+            filament_current_at_temperature_a(t, 3e-4), 3e-4
+        ),
+        t,
+        atol=0.01,
+    )
     v = filament_voltage_at_temperature_v(t, 3e-4, 0.1)
     assert np.allclose(filament_temperature_for_voltage_k(v, 3e-4, 0.1), t, atol=0.01)
 
@@ -57,7 +70,9 @@ def test_current_scales_as_d_to_1_5_and_inverses_round_trip():
 @settings(max_examples=60, deadline=None)
 @given(st.floats(1300.0, 3500.0), st.floats(0.1e-3, 0.5e-3), st.floats(0.5, 0.99))
 def test_thinner_wire_needs_less_current_at_same_temperature(t_k, d_m, ratio):
-    assert filament_current_at_temperature_a(t_k, d_m * ratio) < filament_current_at_temperature_a(t_k, d_m)
+    assert filament_current_at_temperature_a(
+        t_k, d_m * ratio
+    ) < filament_current_at_temperature_a(t_k, d_m)
 
 
 @pytest.mark.parametrize("focal_spot", ["small", "large"])
@@ -68,7 +83,9 @@ def test_nominal_filaments_sit_in_8_12_v_4_8_a(focal_spot):
     t = np.linspace(2500.0, 2750.0, 26)
     args = (s.diameter_m, s.radiating_area_fraction, s.end_loss_fraction)
     i = filament_current_at_temperature_a(t, *args)
-    v = filament_voltage_at_temperature_v(t, s.diameter_m, s.length_m, s.radiating_area_fraction, s.end_loss_fraction)
+    v = filament_voltage_at_temperature_v(
+        t, s.diameter_m, s.length_m, s.radiating_area_fraction, s.end_loss_fraction
+    )
     assert np.all((i >= 4.0) & (i <= 8.0)), i
     assert np.all((v >= 8.0) & (v <= 12.0)), v
 
@@ -86,12 +103,22 @@ def test_transformer_law_and_series_drop():
     # common practice: 240 V mains through a 20:1 step-down transformer gives 12 V; a series
     # resistor dropping 20 V leaves 220 V on the primary and 11 V on the filament, 40 V -> 200 V, 10 V.
     assert float(transformer_secondary_voltage_v(240.0, 20.0)) == pytest.approx(12.0)
-    assert float(primary_voltage_after_series_drop_v(240.0, 20.0)) == pytest.approx(220.0)
-    assert float(transformer_secondary_voltage_v(primary_voltage_after_series_drop_v(240.0, 20.0), 20.0)) == pytest.approx(11.0)
-    assert float(primary_voltage_after_series_drop_v(240.0, 40.0)) == pytest.approx(200.0)
+    assert float(primary_voltage_after_series_drop_v(240.0, 20.0)) == pytest.approx(
+        220.0
+    )
+    assert float(
+        transformer_secondary_voltage_v(
+            primary_voltage_after_series_drop_v(240.0, 20.0), 20.0
+        )
+    ) == pytest.approx(11.0)
+    assert float(primary_voltage_after_series_drop_v(240.0, 40.0)) == pytest.approx(
+        200.0
+    )
     assert float(transformer_secondary_voltage_v(200.0, 20.0)) == pytest.approx(10.0)
     s = default_filament_spec("large")
-    op = filament_circuit_operating_point(s, 240.0, 80.0, primary_drop_v=np.array([20.0, 40.0]))
+    op = filament_circuit_operating_point(
+        s, 240.0, 80.0, primary_drop_v=np.array([20.0, 40.0])
+    )
     assert np.allclose(op["filament_voltage_v"], [11.0, 10.0])
     # a larger series drop -> cooler filament -> less tube current
     assert op["filament_temperature_k"].iloc[0] > op["filament_temperature_k"].iloc[1]
@@ -113,7 +140,9 @@ def test_mains_sensitivity_is_steep():
     # Soft check: over the nominal stations the model elasticity lies in 3-9 (saturated emission
     # ~7.5, space-charge-limited much less), bracketing the quoted figure.
     s = default_filament_spec("large")
-    out = mains_sensitivity(s, 230.0, np.array([50.0, 70.0, 90.0]), series_resistance_ohm=80.0)
+    out = mains_sensitivity(
+        s, 230.0, np.array([50.0, 70.0, 90.0]), series_resistance_ohm=80.0
+    )
     e = out["dln_tube_current_dln_filament_voltage"].to_numpy()
     assert np.all((e > 3.0) & (e < 9.0)), e
 
@@ -134,16 +163,28 @@ def test_nominal_large_filament_shows_the_kv_rise():
     # Same fact with the nominal geometry (its perveance was chosen from it): within 5 %.
     s = default_filament_spec("large")
     i_f = filament_current_for_tube_current_a(s, 450.0, 50.0)
-    assert float(tube_current_for_filament_current_ma(s, i_f, 90.0)) == pytest.approx(550.0, rel=0.05)
+    assert float(tube_current_for_filament_current_ma(s, i_f, 90.0)) == pytest.approx(
+        550.0, rel=0.05
+    )
 
 
 def test_operating_point_frame_and_undeliverable_station():
     s = default_filament_spec("small")
     op = filament_operating_point(s, np.array([100.0, 200.0, 5000.0]), 80.0)
-    assert list(op.columns[:6]) == ["focal_spot", "tube_current_ma", "tube_voltage_kv", "diameter_ratio",
-                                    "filament_temperature_k", "filament_current_a"]
-    assert np.isnan(op["filament_temperature_k"].iloc[2])  # above the space-charge limit
-    assert op["filament_power_w"].iloc[0] == pytest.approx(op["filament_current_a"].iloc[0] * op["filament_voltage_v"].iloc[0])
+    assert list(op.columns[:6]) == [
+        "focal_spot",
+        "tube_current_ma",
+        "tube_voltage_kv",
+        "diameter_ratio",
+        "filament_temperature_k",
+        "filament_current_a",
+    ]
+    assert np.isnan(
+        op["filament_temperature_k"].iloc[2]
+    )  # above the space-charge limit
+    assert op["filament_power_w"].iloc[0] == pytest.approx(
+        op["filament_current_a"].iloc[0] * op["filament_voltage_v"].iloc[0]
+    )
     r = filament_resistance_ohm(op["filament_temperature_k"], s.diameter_m, s.length_m)
     assert np.allclose(op["filament_resistance_ohm"], r, equal_nan=True)
 
@@ -163,14 +204,27 @@ def test_thinner_wire_runs_hotter_but_with_less_current(ma, kv, r):
     # Uniform thinning under closed-loop mA: hotter (smaller emitting area) yet less current
     # (REFERENCES.md [C, model]: about -7 % current at 10 % mass loss).
     s = default_filament_spec("small")
-    assert filament_temperature_for_tube_current_k(s, ma, kv, r) > filament_temperature_for_tube_current_k(s, ma, kv)
-    assert filament_current_for_tube_current_a(s, ma, kv, r) < filament_current_for_tube_current_a(s, ma, kv)
+    assert filament_temperature_for_tube_current_k(
+        s, ma, kv, r
+    ) > filament_temperature_for_tube_current_k(s, ma, kv)
+    assert filament_current_for_tube_current_a(
+        s, ma, kv, r
+    ) < filament_current_for_tube_current_a(s, ma, kv)
 
 
 def test_nan_scalar_array_forward():
     s = default_filament_spec("small")
-    out = filament_current_for_tube_current_a(s, np.array([100.0, np.nan, 200.0]), np.array([80.0, 80.0, np.nan]))
-    assert out.shape == (3,) and np.isfinite(out[0]) and np.isnan(out[1]) and np.isnan(out[2])
+    out = filament_current_for_tube_current_a(
+        s, np.array([100.0, np.nan, 200.0]), np.array([80.0, 80.0, np.nan])
+    )
+    assert (
+        out.shape == (3,)
+        and np.isfinite(out[0])
+        and np.isnan(out[1])
+        and np.isnan(out[2])
+    )
     assert np.ndim(filament_current_for_tube_current_a(s, 100.0, 80.0)) == 0
-    grid = filament_current_for_tube_current_a(s, np.array([[100.0], [200.0]]), np.array([60.0, 80.0, 100.0]))
+    grid = filament_current_for_tube_current_a(
+        s, np.array([[100.0], [200.0]]), np.array([60.0, 80.0, 100.0])
+    )
     assert grid.shape == (2, 3)

@@ -28,7 +28,11 @@ from tubetrack.physics import (
 )
 
 TRUE_LARGE = default_filament_spec("large").replace(
-    emitting_area_fraction=0.35, perveance_a_v15=8e-8, current_scale=1.08, length_m=0.13, end_loss_fraction=0.08
+    emitting_area_fraction=0.35,
+    perveance_a_v15=8e-8,
+    current_scale=1.08,
+    length_m=0.13,
+    end_loss_fraction=0.08,
 )
 
 
@@ -52,11 +56,15 @@ def test_exponent_is_just_below_1_5():
     s = default_filament_spec("small")
     n = float(inversion_exponent(s, 200.0, 80.0))
     assert 1.40 < n < 1.46
-    assert float(inversion_exponent(s.replace(emitting_area_diameter_exponent=0.0), 200.0, 80.0)) == pytest.approx(1.5, abs=1e-6)
+    assert float(
+        inversion_exponent(s.replace(emitting_area_diameter_exponent=0.0), 200.0, 80.0)
+    ) == pytest.approx(1.5, abs=1e-6)
 
 
 @settings(max_examples=40, deadline=None)
-@given(st.floats(0.85, 1.0), st.sampled_from([100.0, 200.0, 300.0]), st.floats(60.0, 120.0))
+@given(
+    st.floats(0.85, 1.0), st.sampled_from([100.0, 200.0, 300.0]), st.floats(60.0, 120.0)
+)
 def test_round_trip_same_spec(r, ma, kv):
     s = default_filament_spec("small")
     q = current_ratio_for_diameter_ratio(s, r, ma, kv)
@@ -73,45 +81,69 @@ def test_round_trip_same_spec(r, ma, kv):
     st.sampled_from([200.0, 400.0, 600.0]),
     st.floats(60.0, 110.0),
 )
-def test_misspecified_tube_is_recovered_within_its_uncertainty(r, area_fraction, a, ma, kv):
+def test_misspecified_tube_is_recovered_within_its_uncertainty(
+    r, area_fraction, a, ma, kv
+):
     # The true filament has another emitting area and maybe a fixed (a = 0) emitting area; the
     # inversion uses the nominal spec. The stated total standard error must cover the error
     # (|error| <= 2 se).
-    true = default_filament_spec("large").replace(emitting_area_fraction=area_fraction,
-                                                   emitting_area_diameter_exponent=a)
+    true = default_filament_spec("large").replace(
+        emitting_area_fraction=area_fraction, emitting_area_diameter_exponent=a
+    )
     q = current_ratio_for_diameter_ratio(true, r, ma, kv)
-    r_hat, se = diameter_ratio_from_current_ratio(q, default_filament_spec("large"), ma, kv)
+    r_hat, se = diameter_ratio_from_current_ratio(
+        q, default_filament_spec("large"), ma, kv
+    )
     assert abs(float(r_hat) - r) <= 2.0 * float(se) + 1e-9
 
 
-def _simulate_history(seed: int, true, noise: float = 0.004, days: int = 900, per_day: int = 60) -> pd.DataFrame:
+def _simulate_history(
+    seed: int, true, noise: float = 0.004, days: int = 900, per_day: int = 60
+) -> pd.DataFrame:
     """Seeded forward simulation: workload -> wear -> logged filament current with noise."""
     rng = np.random.default_rng(seed)
     n = days * per_day
     day = np.repeat(np.arange(days), per_day)
     ma = rng.choice([200.0, 400.0, 600.0], n)
     kv = rng.choice([60.0, 70.0, 81.0, 90.0], n)
-    hot_s = rng.uniform(1.0, 3.0, n) * 12.0  # accelerated so that ~6 % is lost in 900 days
+    hot_s = (
+        rng.uniform(1.0, 3.0, n) * 12.0
+    )  # accelerated so that ~6 % is lost in 900 days
     r = integrate_wear(true, ma, kv, 0.05 * hot_s, 0.95 * hot_s)
-    i_f = filament_current_for_tube_current_a(true, ma, kv, r) * (1.0 + noise * rng.standard_normal(n))
+    i_f = filament_current_for_tube_current_a(true, ma, kv, r) * (
+        1.0 + noise * rng.standard_normal(n)
+    )
     return pd.DataFrame({"day": day, "ma": ma, "kv": kv, "r": r, "i_f": i_f})
 
 
 def _invert_history(df: pd.DataFrame, baseline_days: int = 30) -> pd.DataFrame:
     """What a health analysis does: fit the baseline, normalise, monthly ratios, invert."""
-    base = df[df["day"] < baseline_days].groupby(["ma", "kv"], as_index=False)["i_f"].mean()
-    spec = fit_baseline(default_filament_spec("large"), base["ma"], base["kv"], base["i_f"])
+    base = (
+        df[df["day"] < baseline_days]
+        .groupby(["ma", "kv"], as_index=False)["i_f"]
+        .mean()
+    )
+    spec = fit_baseline(
+        default_filament_spec("large"), base["ma"], base["kv"], base["i_f"]
+    )
     norm = df["i_f"] / filament_current_for_tube_current_a(spec, df["ma"], df["kv"])
     b = norm[df["day"] < baseline_days]
     b_mean, b_se = b.mean(), b.std() / np.sqrt(len(b))
     m = (
         df.assign(norm=norm, month=df["day"] // 30)
         .groupby("month")
-        .agg(q=("norm", "mean"), sd=("norm", "std"), n=("norm", "size"), r_true=("r", "mean"))
+        .agg(
+            q=("norm", "mean"),
+            sd=("norm", "std"),
+            n=("norm", "size"),
+            r_true=("r", "mean"),
+        )
         .reset_index()
     )
     q_rel = m["q"] / b_mean
-    se = q_rel * np.sqrt((m["sd"] / np.sqrt(m["n"]) / m["q"]) ** 2 + (b_se / b_mean) ** 2)
+    se = q_rel * np.sqrt(
+        (m["sd"] / np.sqrt(m["n"]) / m["q"]) ** 2 + (b_se / b_mean) ** 2
+    )
     inv = invert_current_ratio(q_rel.to_numpy(), spec, 400.0, 75.0, se.to_numpy())
     out = pd.concat([m, inv], axis=1)
     # A ratio sees d/d0 relative to the wire during the baseline (documented).
@@ -137,7 +169,9 @@ def test_inversion_recovers_forward_simulated_history(area_exponent):
 def test_fit_baseline_recovers_kv_behaviour_of_a_different_tube():
     # Baseline triples from a tube unlike the nominal one; the fitted spec must predict its kV
     # compensation (the health analysis divides by it) within 0.3 %.
-    ma, kv = np.meshgrid([200.0, 400.0, 600.0], [60.0, 70.0, 81.0, 90.0, 102.0], indexing="ij")
+    ma, kv = np.meshgrid(
+        [200.0, 400.0, 600.0], [60.0, 70.0, 81.0, 90.0, 102.0], indexing="ij"
+    )
     i_f = filament_current_for_tube_current_a(TRUE_LARGE, ma, kv)
     fitted = fit_baseline(default_filament_spec("large"), ma, kv, i_f)
     assert fitted.perveance_a_v15 == pytest.approx(TRUE_LARGE.perveance_a_v15, rel=0.15)
@@ -145,7 +179,9 @@ def test_fit_baseline_recovers_kv_behaviour_of_a_different_tube():
     want = kv_compensation_ratio(TRUE_LARGE, ma, kv, 80.0)
     assert np.allclose(got, want, rtol=3e-3)
     # logged currents are reproduced
-    assert np.allclose(filament_current_for_tube_current_a(fitted, ma, kv), i_f, rtol=3e-3)
+    assert np.allclose(
+        filament_current_for_tube_current_a(fitted, ma, kv), i_f, rtol=3e-3
+    )
 
 
 def test_kv_compensation_direction():
@@ -157,7 +193,9 @@ def test_kv_compensation_direction():
 
 def test_nan_and_bad_input():
     s = default_filament_spec("small")
-    r, se = diameter_ratio_from_current_ratio(np.array([0.95, np.nan, -1.0]), s, 200.0, 80.0, 0.002)
+    r, se = diameter_ratio_from_current_ratio(
+        np.array([0.95, np.nan, -1.0]), s, 200.0, 80.0, 0.002
+    )
     assert np.isfinite(r[0]) and np.isnan(r[1]) and np.isnan(r[2]) and np.isnan(se[1])
     assert r.shape == (3,)
     with pytest.raises(InputError, match="no usable"):

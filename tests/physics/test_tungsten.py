@@ -23,8 +23,17 @@ from tubetrack.physics import (
 # Source: H. A. Jones, "A temperature scale for tungsten", Phys. Rev. 28, 202 (1926), Table I,
 # resistivity in micro-ohm cm (printed to 4 significant figures).
 JONES_RHO_ROWS = [
-    (293, 5.49), (1000, 24.90), (1500, 40.35), (2000, 56.67), (2400, 70.38), (2500, 73.83),
-    (2600, 77.38), (2700, 81.00), (2800, 84.69), (3000, 92.00), (3655, 117.1),
+    (293, 5.49),
+    (1000, 24.90),
+    (1500, 40.35),
+    (2000, 56.67),
+    (2400, 70.38),
+    (2500, 73.83),
+    (2600, 77.38),
+    (2700, 81.00),
+    (2800, 84.69),
+    (3000, 92.00),
+    (3655, 117.1),
 ]
 # Source: Jones 1926, Table I, radiated power in W cm^-2 (printed to 3-4 significant figures).
 JONES_W_ROWS = [(2000, 23.9), (2500, 69.2), (2700, 98.8), (3000, 160.1)]
@@ -34,7 +43,9 @@ JONES_W_ROWS = [(2000, 23.9), (2500, 69.2), (2700, 98.8), (3000, 160.1)]
 def test_resistivity_reproduces_jones_1926_table_i(t_k, rho_uohm_cm):
     # Source: Jones 1926 Table I. Tolerance: half a unit in the last printed digit.
     half_ulp = 0.005 if rho_uohm_cm < 100 else 0.05
-    assert float(tungsten_resistivity_ohm_m(t_k)) * 1e8 == pytest.approx(rho_uohm_cm, abs=half_ulp)
+    assert float(tungsten_resistivity_ohm_m(t_k)) * 1e8 == pytest.approx(
+        rho_uohm_cm, abs=half_ulp
+    )
 
 
 @pytest.mark.parametrize("t_k", [1500, 2000, 2400, 2500, 2600, 2700, 2800])
@@ -43,7 +54,9 @@ def test_white_minges_fit_within_2pct_of_jones_rows(t_k):
     # with Jones (1926) Table I within 2.1 % over 1500-2800 K (REFERENCES.md). Tolerance: the
     # statement's printed precision, 2.1 % + half a unit of its last digit = 2.15 %.
     jones = dict(JONES_RHO_ROWS)[t_k]
-    assert float(tungsten_resistivity_white_minges_ohm_m(t_k)) * 1e8 == pytest.approx(jones, rel=0.0215)
+    assert float(tungsten_resistivity_white_minges_ohm_m(t_k)) * 1e8 == pytest.approx(
+        jones, rel=0.0215
+    )
 
 
 @pytest.mark.parametrize("t_k", [1750.0, 2200.0, 2250.0, 2350.0, 2650.0, 2750.0])
@@ -59,10 +72,14 @@ def test_interpolation_between_jones_rows_agrees_with_white_minges(t_k):
 def test_radiated_power_reproduces_jones_1926(t_k, w_w_cm2):
     # Source: Jones 1926 Table I. Tolerance: half a unit of the last printed digit (<= 0.21 %).
     half_ulp = 0.05 if w_w_cm2 < 100 else 0.05
-    assert float(tungsten_radiated_power_w_m2(t_k)) * 1e-4 == pytest.approx(w_w_cm2, abs=half_ulp)
+    assert float(tungsten_radiated_power_w_m2(t_k)) * 1e-4 == pytest.approx(
+        w_w_cm2, abs=half_ulp
+    )
 
 
-@pytest.mark.parametrize(("t_k", "eps"), [(2000, 0.264), (2500, 0.312), (2700, 0.328), (3000, 0.349)])
+@pytest.mark.parametrize(
+    ("t_k", "eps"), [(2000, 0.264), (2500, 0.312), (2700, 0.328), (3000, 0.349)]
+)
 def test_total_emissivity_from_jones_radiated_power(t_k, eps):
     # Source: e = W / (sigma (T^4 - 293^4)) from Jones 1926 Table I (REFERENCES.md [C], 3 digits;
     # Forsythe & Worthing 1925 agree within 1 %). Tolerance: half a unit in the 3rd digit.
@@ -87,7 +104,9 @@ def test_vapour_pressure_at_2700_k():
     # Source: AIH 1984 as printed in the CRC Handbook: log10(p/atm) = 2.945 - 44094/T + 1.3677 log10 T
     # evaluated by hand with the standard atmosphere from scipy.constants.
     expected = sc.atm * 10 ** (2.945 - 44094 / 2700 + 1.3677 * math.log10(2700))
-    assert float(tungsten_vapour_pressure_pa(2700.0)) == pytest.approx(expected, rel=1e-12)
+    assert float(tungsten_vapour_pressure_pa(2700.0)) == pytest.approx(
+        expected, rel=1e-12
+    )
     # REFERENCES.md: p(2700 K) about 2.05e-4 to 2.10e-4 Pa (both fits).
     assert 2.0e-4 < float(tungsten_vapour_pressure_pa(2700.0)) < 2.15e-4
     assert 2.0e-4 < float(tungsten_vapour_pressure_yaws_pa(2700.0)) < 2.15e-4

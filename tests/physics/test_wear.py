@@ -39,24 +39,37 @@ def test_hot_time_to_end_of_life_for_0_22_mm_wire_at_2700_k():
     # Tolerance 1.5 %: the flux is printed to 3 digits.
     expected = 0.0513 * 0.22e-3 / (2 * 2.35e-7 / 19250.0)
     s = default_filament_spec("small")
-    assert float(hot_time_to_end_of_life_s(s, 2700.0)) == pytest.approx(expected, rel=0.015)
-    assert float(thinning_rate_m_s(2700.0)) == pytest.approx(2 * 1.2e-11, rel=0.05)  # brief: radius 1.2e-11 m/s
+    assert float(hot_time_to_end_of_life_s(s, 2700.0)) == pytest.approx(
+        expected, rel=0.015
+    )
+    assert float(thinning_rate_m_s(2700.0)) == pytest.approx(
+        2 * 1.2e-11, rel=0.05
+    )  # brief: radius 1.2e-11 m/s
 
 
 def test_hot_spot_factor_shortens_life_and_triggers_end_of_life():
     s = default_filament_spec("small")
     hs = s.replace(hot_spot_factor=2.0)
-    assert float(hot_time_to_end_of_life_s(hs, 2700.0)) == pytest.approx(float(hot_time_to_end_of_life_s(s, 2700.0)) / 2)
+    assert float(hot_time_to_end_of_life_s(hs, 2700.0)) == pytest.approx(
+        float(hot_time_to_end_of_life_s(s, 2700.0)) / 2
+    )
     r = np.array([1.0, 0.97, 0.948, np.nan])
     assert end_of_life_reached(r).tolist() == [False, False, True, False]
-    assert end_of_life_reached(r, hot_spot_factor=2.0).tolist() == [False, True, True, False]
+    assert end_of_life_reached(r, hot_spot_factor=2.0).tolist() == [
+        False,
+        True,
+        True,
+        False,
+    ]
     assert end_of_life_reached(r, threshold=0.02).tolist() == [False, True, True, False]
 
 
 @settings(max_examples=60, deadline=None)
 @given(st.floats(1500.0, 3400.0), st.floats(1.0, 200.0))
 def test_hotter_evaporates_faster(t_k, dt_k):
-    assert tungsten_evaporation_flux_kg_m2_s(t_k + dt_k) > tungsten_evaporation_flux_kg_m2_s(t_k)
+    assert tungsten_evaporation_flux_kg_m2_s(
+        t_k + dt_k
+    ) > tungsten_evaporation_flux_kg_m2_s(t_k)
     s = default_filament_spec("large")
     assert diameter_loss_rate_per_s(s, t_k + dt_k) > diameter_loss_rate_per_s(s, t_k)
 
@@ -64,7 +77,10 @@ def test_hotter_evaporates_faster(t_k, dt_k):
 def test_standby_at_1500_k_is_negligible():
     # REFERENCES.md [R]: about 1500 K on standby where evaporation is negligible.
     s = default_filament_spec("small")
-    assert float(diameter_loss_rate_per_s(s, 1500.0) / diameter_loss_rate_per_s(s, 2700.0)) < 1e-6
+    assert (
+        float(diameter_loss_rate_per_s(s, 1500.0) / diameter_loss_rate_per_s(s, 2700.0))
+        < 1e-6
+    )
 
 
 def test_integration_is_linear_without_feedback():

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from enum import Enum
+from enum import StrEnum
 from typing import Annotated
 
 import typer
@@ -10,7 +10,7 @@ import typer
 from tubetrack.cli.common import FormatOption, OutputFormat, emit, handle_errors
 
 
-class FocalSpot(str, Enum):
+class FocalSpot(StrEnum):
     """Focal spot (filament) choices."""
 
     small = "small"
@@ -38,7 +38,10 @@ def register(app: typer.Typer) -> None:
     def filament(
         focal_spot: Annotated[
             FocalSpot,
-            typer.Option("--focal-spot", help="Filament: small (0.22 mm wire) or large (0.30 mm wire). Default: large."),
+            typer.Option(
+                "--focal-spot",
+                help="Filament: small (0.22 mm wire) or large (0.30 mm wire). Default: large.",
+            ),
         ] = FocalSpot.large,
         tube_current_ma: Annotated[
             list[float] | None,
@@ -52,7 +55,11 @@ def register(app: typer.Typer) -> None:
         ] = None,
         tube_voltage_kv: Annotated[
             list[float] | None,
-            typer.Option("--kv", help="Tube voltage [kV]; repeat for several. Default: 80.", show_default=False),
+            typer.Option(
+                "--kv",
+                help="Tube voltage [kV]; repeat for several. Default: 80.",
+                show_default=False,
+            ),
         ] = None,
         diameter_mm: Annotated[
             float | None,
@@ -72,14 +79,24 @@ def register(app: typer.Typer) -> None:
         ] = None,
         diameter_ratio: Annotated[
             float,
-            typer.Option("--diameter-ratio", help="Aged wire: current diameter / new diameter [1]. Default: 1.0."),
+            typer.Option(
+                "--diameter-ratio",
+                help="Aged wire: current diameter / new diameter [1]. Default: 1.0.",
+            ),
         ] = 1.0,
         mains_v: Annotated[
-            float, typer.Option("--mains-v", help="Mains voltage feeding the filament circuit [V rms]. Default: 230.")
+            float,
+            typer.Option(
+                "--mains-v",
+                help="Mains voltage feeding the filament circuit [V rms]. Default: 230.",
+            ),
         ] = 230.0,
         turns_ratio: Annotated[
             float,
-            typer.Option("--turns-ratio", help="Filament transformer turns ratio Np/Ns [1]. Default: 20 (240 V -> 12 V)."),
+            typer.Option(
+                "--turns-ratio",
+                help="Filament transformer turns ratio Np/Ns [1]. Default: 20 (240 V -> 12 V).",
+            ),
         ] = 20.0,
         series_resistance_ohm: Annotated[
             float | None,
@@ -118,7 +135,10 @@ def register(app: typer.Typer) -> None:
             changes["diameter_m"] = diameter_mm * 1e-3
         if length_mm is not None:
             changes["length_m"] = length_mm * 1e-3
-        for name, value in (("--mains-v", mains_v), ("--diameter-ratio", diameter_ratio)):
+        for name, value in (
+            ("--mains-v", mains_v),
+            ("--diameter-ratio", diameter_ratio),
+        ):
             if not value > 0:
                 raise InputError(f"{name} is {value!r}; it must be > 0.")
         spec = spec.replace(**changes)
@@ -129,33 +149,51 @@ def register(app: typer.Typer) -> None:
                 spec,
                 mains_v,
                 kvs,
-                series_resistance_ohm=0.0 if series_resistance_ohm is None else series_resistance_ohm,
+                series_resistance_ohm=0.0
+                if series_resistance_ohm is None
+                else series_resistance_ohm,
                 primary_drop_v=primary_drop_v,
                 diameter_ratio=diameter_ratio,
             )
             if primary_drop_v is None:
-                sens = mains_sensitivity(spec, mains_v, kvs, series_resistance_ohm=series_resistance_ohm)
-                frame["dln_tube_current_dln_mains"] = sens["dln_tube_current_dln_mains"].to_numpy()
+                sens = mains_sensitivity(
+                    spec, mains_v, kvs, series_resistance_ohm=series_resistance_ohm
+                )
+                frame["dln_tube_current_dln_mains"] = sens[
+                    "dln_tube_current_dln_mains"
+                ].to_numpy()
             frame.insert(0, "focal_spot", spec.focal_spot)
             emit(
                 frame,
                 fmt,
                 title="Filament circuit operating point (model)",
                 columns=[
-                    "focal_spot", "mains_v", "primary_voltage_v", "filament_voltage_v",
-                    "filament_current_a", "filament_temperature_k", "tube_current_ma",
+                    "focal_spot",
+                    "mains_v",
+                    "primary_voltage_v",
+                    "filament_voltage_v",
+                    "filament_current_a",
+                    "filament_temperature_k",
+                    "tube_current_ma",
                     "tube_voltage_kv",
                 ],
             )
             return
 
-        default_ma = [100.0, 200.0, 400.0] if spec.focal_spot == "small" else [200.0, 400.0, 600.0]
+        default_ma = (
+            [100.0, 200.0, 400.0]
+            if spec.focal_spot == "small"
+            else [200.0, 400.0, 600.0]
+        )
         mas = np.asarray(tube_current_ma or default_ma, dtype=float)
         ma_grid, kv_grid = (a.ravel() for a in np.meshgrid(mas, kvs, indexing="ij"))
         op = filament_operating_point(spec, ma_grid, kv_grid, diameter_ratio)
         r_series = np.asarray(
             series_resistance_for_filament_voltage_ohm(
-                mains_v, op["filament_voltage_v"].to_numpy(), op["filament_current_a"].to_numpy(), turns_ratio
+                mains_v,
+                op["filament_voltage_v"].to_numpy(),
+                op["filament_current_a"].to_numpy(),
+                turns_ratio,
             ),
             dtype=float,
         )
@@ -172,7 +210,9 @@ def register(app: typer.Typer) -> None:
                 "primary_voltage_v": op["primary_voltage_v"],
                 "series_drop_v": mains_v - op["primary_voltage_v"],
                 "series_resistance_ohm": r_series,
-                "dln_tube_current_dln_mains": sens["dln_tube_current_dln_mains"].to_numpy(),
+                "dln_tube_current_dln_mains": sens[
+                    "dln_tube_current_dln_mains"
+                ].to_numpy(),
                 "space_charge_current_ma": op["space_charge_current_ma"],
             }
         )
@@ -181,8 +221,13 @@ def register(app: typer.Typer) -> None:
             fmt,
             title="Filament operating points (model; - = not deliverable)",
             columns=[
-                "focal_spot", "tube_current_ma", "tube_voltage_kv", "filament_temperature_k",
-                "filament_current_a", "filament_voltage_v", "series_resistance_ohm",
+                "focal_spot",
+                "tube_current_ma",
+                "tube_voltage_kv",
+                "filament_temperature_k",
+                "filament_current_a",
+                "filament_voltage_v",
+                "series_resistance_ohm",
                 "dln_tube_current_dln_mains",
             ],
         )

@@ -46,23 +46,32 @@ __all__ = [
 ]
 
 
-def transformer_secondary_voltage_v(primary_voltage_v: ArrayLike, turns_ratio: ArrayLike) -> Any:
+def transformer_secondary_voltage_v(
+    primary_voltage_v: ArrayLike, turns_ratio: ArrayLike
+) -> Any:
     """Ideal transformer law V_s = V_p Ns/Np = V_p / N [V] (N = Np/Ns, step-down N > 1)."""
     return _out(_asarray(primary_voltage_v) / _asarray(turns_ratio))
 
 
-def transformer_primary_current_a(secondary_current_a: ArrayLike, turns_ratio: ArrayLike) -> Any:
+def transformer_primary_current_a(
+    secondary_current_a: ArrayLike, turns_ratio: ArrayLike
+) -> Any:
     """Ideal transformer law I_p = I_s / N [A] (magnetising current neglected)."""
     return _out(_asarray(secondary_current_a) / _asarray(turns_ratio))
 
 
-def primary_voltage_after_series_drop_v(mains_v: ArrayLike, series_drop_v: ArrayLike) -> Any:
+def primary_voltage_after_series_drop_v(
+    mains_v: ArrayLike, series_drop_v: ArrayLike
+) -> Any:
     """Voltage left on the transformer primary after the series resistor's drop [V]."""
     return _out(_asarray(mains_v) - _asarray(series_drop_v))
 
 
 def series_resistance_for_filament_voltage_ohm(
-    mains_v: ArrayLike, filament_voltage_v: ArrayLike, filament_current_a: ArrayLike, turns_ratio: ArrayLike
+    mains_v: ArrayLike,
+    filament_voltage_v: ArrayLike,
+    filament_current_a: ArrayLike,
+    turns_ratio: ArrayLike,
 ) -> Any:
     """Primary series resistance that sets a filament voltage and current [ohm].
 
@@ -84,8 +93,15 @@ def _solve_temperature(
     hi = np.full(np.shape(secondary_open_v), 3650.0)
 
     def g(t: Any) -> Any:
-        i = _asarray(filament_current_at_temperature_a(t, d, spec.radiating_area_fraction, spec.end_loss_fraction))
-        return i * (_asarray(filament_resistance_ohm(t, d, spec.length_m)) + source_ohm) - secondary_open_v
+        i = _asarray(
+            filament_current_at_temperature_a(
+                t, d, spec.radiating_area_fraction, spec.end_loss_fraction
+            )
+        )
+        return (
+            i * (_asarray(filament_resistance_ohm(t, d, spec.length_m)) + source_ohm)
+            - secondary_open_v
+        )
 
     for _ in range(50):
         mid = 0.5 * (lo + hi)
@@ -137,7 +153,9 @@ def filament_circuit_operating_point(
 
     n = float(spec.turns_ratio if turns_ratio is None else turns_ratio)
     if not n > 0:
-        raise InputError(f"turns ratio is {n!r}; it must be > 0 (Np/Ns, e.g. 20 for 240 V -> 12 V).")
+        raise InputError(
+            f"turns ratio is {n!r}; it must be > 0 (Np/Ns, e.g. 20 for 240 V -> 12 V)."
+        )
     mains, kv, r, rs, drop_in = np.broadcast_arrays(
         np.atleast_1d(_asarray(mains_v)),
         np.atleast_1d(_asarray(tube_voltage_kv)),
@@ -150,15 +168,33 @@ def filament_circuit_operating_point(
         drop = drop_in
         v_p = mains - drop
         v_f = v_p / n
-        t = _asarray(filament_temperature_for_voltage_k(v_f, d, spec.length_m,
-                                                       spec.radiating_area_fraction, spec.end_loss_fraction))
+        t = _asarray(
+            filament_temperature_for_voltage_k(
+                v_f,
+                d,
+                spec.length_m,
+                spec.radiating_area_fraction,
+                spec.end_loss_fraction,
+            )
+        )
     else:
         t = _solve_temperature(spec, mains / n, rs / n**2, r)
-        v_f = _asarray(filament_voltage_at_temperature_v(t, d, spec.length_m,
-                                                         spec.radiating_area_fraction, spec.end_loss_fraction))
+        v_f = _asarray(
+            filament_voltage_at_temperature_v(
+                t,
+                d,
+                spec.length_m,
+                spec.radiating_area_fraction,
+                spec.end_loss_fraction,
+            )
+        )
         v_p = v_f * n
         drop = mains - v_p
-    i_f = _asarray(filament_current_at_temperature_a(t, d, spec.radiating_area_fraction, spec.end_loss_fraction))
+    i_f = _asarray(
+        filament_current_at_temperature_a(
+            t, d, spec.radiating_area_fraction, spec.end_loss_fraction
+        )
+    )
     return pd.DataFrame(
         {
             "mains_v": mains,
@@ -199,8 +235,12 @@ def mains_sensitivity(
 
     kw = dict(turns_ratio=turns_ratio, series_resistance_ohm=series_resistance_ohm)
     mains = np.atleast_1d(_asarray(mains_v))
-    up = filament_circuit_operating_point(spec, mains * (1 + relative_step), tube_voltage_kv, **kw)
-    dn = filament_circuit_operating_point(spec, mains * (1 - relative_step), tube_voltage_kv, **kw)
+    up = filament_circuit_operating_point(
+        spec, mains * (1 + relative_step), tube_voltage_kv, **kw
+    )
+    dn = filament_circuit_operating_point(
+        spec, mains * (1 - relative_step), tube_voltage_kv, **kw
+    )
     den = np.log((1 + relative_step) / (1 - relative_step))
 
     def el(col: str) -> Any:

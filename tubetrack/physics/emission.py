@@ -169,7 +169,9 @@ def child_langmuir_perveance_a_v15(area_m2: ArrayLike, gap_m: ArrayLike) -> Any:
     return _out(CHILD_LANGMUIR_K_A_V15 * _asarray(area_m2) / _asarray(gap_m) ** 2)
 
 
-def child_langmuir_current_a(tube_voltage_v: ArrayLike, perveance_a_v15: ArrayLike) -> Any:
+def child_langmuir_current_a(
+    tube_voltage_v: ArrayLike, perveance_a_v15: ArrayLike
+) -> Any:
     """Space-charge-limited tube current in perveance form, I = P V^1.5.
 
     Parameters

@@ -198,13 +198,18 @@ def saturation_current_at_temperature_a(
     """Temperature-limited emission current of the filament, J_RD(T) x S_e [A]."""
     r = _asarray(diameter_ratio)
     j = _asarray(
-        richardson_dushman_current_density_a_m2(temperature_k, spec.work_function_ev, spec.richardson_a_m2_k2)
+        richardson_dushman_current_density_a_m2(
+            temperature_k, spec.work_function_ev, spec.richardson_a_m2_k2
+        )
     )
     return _out(j * _emitting_area(spec, r))
 
 
 def tube_current_at_temperature_ma(
-    spec: FilamentSpec, temperature_k: ArrayLike, tube_voltage_kv: ArrayLike, diameter_ratio: ArrayLike = 1.0
+    spec: FilamentSpec,
+    temperature_k: ArrayLike,
+    tube_voltage_kv: ArrayLike,
+    diameter_ratio: ArrayLike = 1.0,
 ) -> Any:
     """Tube current delivered at a filament temperature and tube voltage [mA].
 
@@ -219,8 +224,12 @@ def tube_current_at_temperature_ma(
         d/d0 [1].
     """
     i_sat = saturation_current_at_temperature_a(spec, temperature_k, diameter_ratio)
-    i_sc = child_langmuir_current_a(_asarray(tube_voltage_kv) * 1e3, spec.perveance_a_v15)
-    return _out(_asarray(blended_tube_current_a(i_sat, i_sc, spec.blend_sharpness)) * 1e3)
+    i_sc = child_langmuir_current_a(
+        _asarray(tube_voltage_kv) * 1e3, spec.perveance_a_v15
+    )
+    return _out(
+        _asarray(blended_tube_current_a(i_sat, i_sc, spec.blend_sharpness)) * 1e3
+    )
 
 
 def _heat_args(spec: FilamentSpec, r: Any) -> tuple[Any, float, float]:
@@ -240,7 +249,9 @@ def tube_current_for_filament_current_ma(
     """
     r = _asarray(diameter_ratio)
     d, a_rad, f_end = _heat_args(spec, r)
-    t = filament_temperature_for_current_k(_asarray(filament_current_a) / spec.current_scale, d, a_rad, f_end)
+    t = filament_temperature_for_current_k(
+        _asarray(filament_current_a) / spec.current_scale, d, a_rad, f_end
+    )
     return tube_current_at_temperature_ma(spec, t, tube_voltage_kv, r)
 
 
@@ -269,11 +280,17 @@ def filament_temperature_for_tube_current_k(
         P V^1.5 at that kV (not deliverable) or an input is NaN.
     """
     r = _asarray(diameter_ratio)
-    i_sc = child_langmuir_current_a(_asarray(tube_voltage_kv) * 1e3, spec.perveance_a_v15)
-    i_sat = saturation_current_for_tube_current_a(_asarray(tube_current_ma) * 1e-3, i_sc, spec.blend_sharpness)
+    i_sc = child_langmuir_current_a(
+        _asarray(tube_voltage_kv) * 1e3, spec.perveance_a_v15
+    )
+    i_sat = saturation_current_for_tube_current_a(
+        _asarray(tube_current_ma) * 1e-3, i_sc, spec.blend_sharpness
+    )
     with np.errstate(divide="ignore", invalid="ignore"):
         j = _asarray(i_sat) / _emitting_area(spec, r)
-    return richardson_dushman_temperature_k(j, spec.work_function_ev, spec.richardson_a_m2_k2)
+    return richardson_dushman_temperature_k(
+        j, spec.work_function_ev, spec.richardson_a_m2_k2
+    )
 
 
 def filament_current_for_tube_current_a(
@@ -301,9 +318,14 @@ def filament_current_for_tube_current_a(
         not deliverable or outside the property tables.
     """
     r = _asarray(diameter_ratio)
-    t = filament_temperature_for_tube_current_k(spec, tube_current_ma, tube_voltage_kv, r)
+    t = filament_temperature_for_tube_current_k(
+        spec, tube_current_ma, tube_voltage_kv, r
+    )
     d, a_rad, f_end = _heat_args(spec, r)
-    return _out(_asarray(filament_current_at_temperature_a(t, d, a_rad, f_end)) * spec.current_scale)
+    return _out(
+        _asarray(filament_current_at_temperature_a(t, d, a_rad, f_end))
+        * spec.current_scale
+    )
 
 
 def filament_operating_point(
@@ -344,7 +366,9 @@ def filament_operating_point(
             "filament_temperature_k": t,
             "filament_current_a": i_f * spec.current_scale,
             "filament_voltage_v": v_f,
-            "filament_resistance_ohm": _asarray(filament_resistance_ohm(t, d, spec.length_m)),
+            "filament_resistance_ohm": _asarray(
+                filament_resistance_ohm(t, d, spec.length_m)
+            ),
             "filament_power_w": i_f * v_f,
             "saturation_current_ma": i_sat * 1e3,
             "space_charge_current_ma": i_sc * 1e3,

@@ -59,21 +59,41 @@ _DT_K = 10.0  # temperature step for the local quadratic of ln sqrt(W/rho) [K]
 
 
 def current_ratio_for_diameter_ratio(
-    spec: FilamentSpec, diameter_ratio: ArrayLike, tube_current_ma: ArrayLike, tube_voltage_kv: ArrayLike
+    spec: FilamentSpec,
+    diameter_ratio: ArrayLike,
+    tube_current_ma: ArrayLike,
+    tube_voltage_kv: ArrayLike,
 ) -> Any:
     """Forward model of the inversion: I_f(r) / I_f(1) at fixed tube current and kV [1]."""
-    f1 = _asarray(filament_current_for_tube_current_a(spec, tube_current_ma, tube_voltage_kv, 1.0))
-    fr = _asarray(filament_current_for_tube_current_a(spec, tube_current_ma, tube_voltage_kv, diameter_ratio))
+    f1 = _asarray(
+        filament_current_for_tube_current_a(spec, tube_current_ma, tube_voltage_kv, 1.0)
+    )
+    fr = _asarray(
+        filament_current_for_tube_current_a(
+            spec, tube_current_ma, tube_voltage_kv, diameter_ratio
+        )
+    )
     return _out(fr / f1)
 
 
 def inversion_exponent(
-    spec: FilamentSpec, tube_current_ma: ArrayLike, tube_voltage_kv: ArrayLike, diameter_ratio: ArrayLike = 1.0
+    spec: FilamentSpec,
+    tube_current_ma: ArrayLike,
+    tube_voltage_kv: ArrayLike,
+    diameter_ratio: ArrayLike = 1.0,
 ) -> Any:
     """Local exponent n = d ln I_f / d ln(d/d0) at fixed tube current and kV [1] (about 1.42)."""
     r = _asarray(diameter_ratio)
-    up = _asarray(filament_current_for_tube_current_a(spec, tube_current_ma, tube_voltage_kv, r * np.exp(_H)))
-    dn = _asarray(filament_current_for_tube_current_a(spec, tube_current_ma, tube_voltage_kv, r * np.exp(-_H)))
+    up = _asarray(
+        filament_current_for_tube_current_a(
+            spec, tube_current_ma, tube_voltage_kv, r * np.exp(_H)
+        )
+    )
+    dn = _asarray(
+        filament_current_for_tube_current_a(
+            spec, tube_current_ma, tube_voltage_kv, r * np.exp(-_H)
+        )
+    )
     return _out(np.log(up / dn) / (2 * _H))
 
 
@@ -119,7 +139,9 @@ def _solve_ratio(spec: FilamentSpec, q: Any, ma: Any, kv: Any) -> tuple[Any, Any
         return 1.5 * ln_r + np.log(_h_current(temperature(ln_r))) - lh0
 
     with np.errstate(divide="ignore", invalid="ignore"):
-        n0 = (ln_q_fast(np.full_like(t0, _H)) - ln_q_fast(np.full_like(t0, -_H))) / (2 * _H)
+        n0 = (ln_q_fast(np.full_like(t0, _H)) - ln_q_fast(np.full_like(t0, -_H))) / (
+            2 * _H
+        )
         ln_q = np.log(np.where(q > 0, q, np.nan))
         ln_r = ln_q / n0
         for _ in range(4):
@@ -166,16 +188,29 @@ def invert_current_ratio(
         np.atleast_1d(_asarray(tube_current_ma)),
         np.atleast_1d(_asarray(tube_voltage_kv)),
     )
-    se_q = np.zeros_like(q) if current_ratio_se is None else np.broadcast_to(_asarray(current_ratio_se), q.shape)
+    se_q = (
+        np.zeros_like(q)
+        if current_ratio_se is None
+        else np.broadcast_to(_asarray(current_ratio_se), q.shape)
+    )
     r, n = _solve_ratio(spec, q, ma, kv)
     alt_a = 0.0 if spec.emitting_area_diameter_exponent != 0 else 1.0
-    r_a, n_a = _solve_ratio(spec.replace(emitting_area_diameter_exponent=alt_a), q, ma, kv)
+    r_a, n_a = _solve_ratio(
+        spec.replace(emitting_area_diameter_exponent=alt_a), q, ma, kv
+    )
     hi_f = min(1.0, spec.emitting_area_fraction * 2.0)
     r_hi, _ = _solve_ratio(spec.replace(emitting_area_fraction=hi_f), q, ma, kv)
-    r_lo, _ = _solve_ratio(spec.replace(emitting_area_fraction=spec.emitting_area_fraction / 2.0), q, ma, kv)
+    r_lo, _ = _solve_ratio(
+        spec.replace(emitting_area_fraction=spec.emitting_area_fraction / 2.0),
+        q,
+        ma,
+        kv,
+    )
     # Model error: the full spread between the emitting-area assumptions (a = 1 vs a = 0: either
     # may hold, so one standard error spans the whole gap) and half the spread for T0 (area x2, /2).
-    se_model = np.sqrt((r - r_a) ** 2 + (0.5 * np.maximum(np.abs(r - r_hi), np.abs(r - r_lo))) ** 2)
+    se_model = np.sqrt(
+        (r - r_a) ** 2 + (0.5 * np.maximum(np.abs(r - r_hi), np.abs(r - r_lo))) ** 2
+    )
     with np.errstate(divide="ignore", invalid="ignore"):
         se_meas = r * se_q / (q * n)
     se = np.sqrt(se_meas**2 + se_model**2)
@@ -222,26 +257,45 @@ def diameter_ratio_from_current_ratio(
         d/d0 [1] and its standard error [1] (measurement and model combined in quadrature; see
         :func:`invert_current_ratio` for the parts). Approximately q^(1/1.42).
     """
-    frame = invert_current_ratio(current_ratio, spec, tube_current_ma, tube_voltage_kv, current_ratio_se)
+    frame = invert_current_ratio(
+        current_ratio, spec, tube_current_ma, tube_voltage_kv, current_ratio_se
+    )
     shape = np.broadcast_shapes(
-        np.shape(current_ratio), np.shape(tube_current_ma), np.shape(tube_voltage_kv),
+        np.shape(current_ratio),
+        np.shape(tube_current_ma),
+        np.shape(tube_voltage_kv),
         () if current_ratio_se is None else np.shape(current_ratio_se),
     )
-    r = frame["diameter_ratio"].to_numpy().reshape(shape) if shape else frame["diameter_ratio"].to_numpy()[0]
-    se = frame["diameter_ratio_se"].to_numpy().reshape(shape) if shape else frame["diameter_ratio_se"].to_numpy()[0]
+    r = (
+        frame["diameter_ratio"].to_numpy().reshape(shape)
+        if shape
+        else frame["diameter_ratio"].to_numpy()[0]
+    )
+    se = (
+        frame["diameter_ratio_se"].to_numpy().reshape(shape)
+        if shape
+        else frame["diameter_ratio_se"].to_numpy()[0]
+    )
     return r, se
 
 
 def kv_compensation_ratio(
-    spec: FilamentSpec, tube_current_ma: ArrayLike, tube_voltage_kv: ArrayLike, reference_kv: ArrayLike
+    spec: FilamentSpec,
+    tube_current_ma: ArrayLike,
+    tube_voltage_kv: ArrayLike,
+    reference_kv: ArrayLike,
 ) -> Any:
     """Space-charge compensation: I_f(mA, kV) / I_f(mA, reference kV) for the same wire [1].
 
     Divide a logged filament current by this to express it at the reference kV (the generator
     heats less at high kV for the same mA because the space-charge limit rises).
     """
-    at_kv = _asarray(filament_current_for_tube_current_a(spec, tube_current_ma, tube_voltage_kv))
-    at_ref = _asarray(filament_current_for_tube_current_a(spec, tube_current_ma, reference_kv))
+    at_kv = _asarray(
+        filament_current_for_tube_current_a(spec, tube_current_ma, tube_voltage_kv)
+    )
+    at_ref = _asarray(
+        filament_current_for_tube_current_a(spec, tube_current_ma, reference_kv)
+    )
     return _out(at_kv / at_ref)
 
 
@@ -289,10 +343,22 @@ def fit_baseline(
     """
     from scipy.optimize import least_squares
 
-    ma, kv, i_f = (np.ravel(a) for a in np.broadcast_arrays(
-        _asarray(tube_current_ma), _asarray(tube_voltage_kv), _asarray(filament_current_a)
-    ))
-    ok = np.isfinite(ma) & np.isfinite(kv) & np.isfinite(i_f) & (ma > 0) & (kv > 0) & (i_f > 0)
+    ma, kv, i_f = (
+        np.ravel(a)
+        for a in np.broadcast_arrays(
+            _asarray(tube_current_ma),
+            _asarray(tube_voltage_kv),
+            _asarray(filament_current_a),
+        )
+    )
+    ok = (
+        np.isfinite(ma)
+        & np.isfinite(kv)
+        & np.isfinite(i_f)
+        & (ma > 0)
+        & (kv > 0)
+        & (i_f > 0)
+    )
     ma, kv, i_f = ma[ok], kv[ok], i_f[ok]
     if ma.size < 1:
         raise InputError(
@@ -304,14 +370,25 @@ def fit_baseline(
     ln_p0 = np.log(max(spec.perveance_a_v15, 1.5 * p_min))
     ln_f0 = np.log(spec.emitting_area_fraction)
     base = spec.replace(current_scale=1.0)
-    model0 = _asarray(filament_current_for_tube_current_a(base.replace(perveance_a_v15=np.exp(ln_p0)), ma, kv))
-    ln_s0 = float(np.nanmean(np.log(i_f) - np.log(model0))) if np.any(np.isfinite(model0)) else 0.0
+    model0 = _asarray(
+        filament_current_for_tube_current_a(
+            base.replace(perveance_a_v15=np.exp(ln_p0)), ma, kv
+        )
+    )
+    ln_s0 = (
+        float(np.nanmean(np.log(i_f) - np.log(model0)))
+        if np.any(np.isfinite(model0))
+        else 0.0
+    )
 
     def unpack(theta: np.ndarray) -> FilamentSpec:
         ln_s, ln_p = theta[0], theta[1]
         f_e = np.exp(theta[2]) if fit_emitting_area else spec.emitting_area_fraction
-        return spec.replace(current_scale=float(np.exp(ln_s)), perveance_a_v15=float(np.exp(ln_p)),
-                            emitting_area_fraction=float(min(f_e, 1.0)))
+        return spec.replace(
+            current_scale=float(np.exp(ln_s)),
+            perveance_a_v15=float(np.exp(ln_p)),
+            emitting_area_fraction=float(min(f_e, 1.0)),
+        )
 
     def residuals(theta: np.ndarray) -> np.ndarray:
         s = unpack(theta)
@@ -330,7 +407,9 @@ def fit_baseline(
     if fit_emitting_area:
         theta0[2] = float(np.clip(theta0[2], lower[2] + 1e-9, upper[2] - 1e-9))
     try:
-        sol = least_squares(residuals, np.array(theta0, dtype=float), bounds=(lower, upper), x_scale=1.0)
+        sol = least_squares(
+            residuals, np.array(theta0, dtype=float), bounds=(lower, upper), x_scale=1.0
+        )
     except ValueError as exc:  # pragma: no cover - defensive
         raise AnalysisError(
             f"fit_baseline failed ({exc}). Check: filament current in A, tube current in mA, kV in "

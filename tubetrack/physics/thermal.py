@@ -63,17 +63,29 @@ if not (np.all(np.diff(_H_I) > 0) and np.all(np.diff(_H_V) > 0)):  # pragma: no 
     raise RuntimeError("heat-balance grids are not monotone; check the property tables")
 
 
-def _geometry_current(diameter_m: Any, radiating_area_fraction: Any, end_loss_fraction: Any) -> Any:
-    return 0.5 * np.pi * np.sqrt(radiating_area_fraction * diameter_m**3 / (1.0 - end_loss_fraction))
+def _geometry_current(
+    diameter_m: Any, radiating_area_fraction: Any, end_loss_fraction: Any
+) -> Any:
+    return (
+        0.5
+        * np.pi
+        * np.sqrt(radiating_area_fraction * diameter_m**3 / (1.0 - end_loss_fraction))
+    )
 
 
 def _geometry_voltage(
     diameter_m: Any, length_m: Any, radiating_area_fraction: Any, end_loss_fraction: Any
 ) -> Any:
-    return 2.0 * length_m * np.sqrt(radiating_area_fraction / (diameter_m * (1.0 - end_loss_fraction)))
+    return (
+        2.0
+        * length_m
+        * np.sqrt(radiating_area_fraction / (diameter_m * (1.0 - end_loss_fraction)))
+    )
 
 
-def filament_resistance_ohm(temperature_k: ArrayLike, diameter_m: ArrayLike, length_m: ArrayLike) -> Any:
+def filament_resistance_ohm(
+    temperature_k: ArrayLike, diameter_m: ArrayLike, length_m: ArrayLike
+) -> Any:
     """Resistance of a tungsten wire at temperature T: R = rho(T) L / (pi d^2 / 4) [ohm].
 
     Parameters
@@ -116,7 +128,11 @@ def filament_current_at_temperature_a(
     """
     t = _asarray(temperature_k)
     h = np.interp(t, _TG, _H_I, left=np.nan, right=np.nan)
-    geo = _geometry_current(_asarray(diameter_m), _asarray(radiating_area_fraction), _asarray(end_loss_fraction))
+    geo = _geometry_current(
+        _asarray(diameter_m),
+        _asarray(radiating_area_fraction),
+        _asarray(end_loss_fraction),
+    )
     return _out(h * geo)
 
 
@@ -141,7 +157,10 @@ def filament_voltage_at_temperature_v(
     t = _asarray(temperature_k)
     h = np.interp(t, _TG, _H_V, left=np.nan, right=np.nan)
     geo = _geometry_voltage(
-        _asarray(diameter_m), _asarray(length_m), _asarray(radiating_area_fraction), _asarray(end_loss_fraction)
+        _asarray(diameter_m),
+        _asarray(length_m),
+        _asarray(radiating_area_fraction),
+        _asarray(end_loss_fraction),
     )
     return _out(h * geo)
 
@@ -156,7 +175,11 @@ def filament_temperature_for_current_k(
 
     Returns NaN when the current would put the wire outside 1200-3655 K.
     """
-    geo = _geometry_current(_asarray(diameter_m), _asarray(radiating_area_fraction), _asarray(end_loss_fraction))
+    geo = _geometry_current(
+        _asarray(diameter_m),
+        _asarray(radiating_area_fraction),
+        _asarray(end_loss_fraction),
+    )
     h = _asarray(filament_current_a) / geo
     return _out(np.interp(h, _H_I, _TG, left=np.nan, right=np.nan))
 
@@ -173,7 +196,10 @@ def filament_temperature_for_voltage_k(
     Returns NaN when the voltage would put the wire outside 1200-3655 K.
     """
     geo = _geometry_voltage(
-        _asarray(diameter_m), _asarray(length_m), _asarray(radiating_area_fraction), _asarray(end_loss_fraction)
+        _asarray(diameter_m),
+        _asarray(length_m),
+        _asarray(radiating_area_fraction),
+        _asarray(end_loss_fraction),
     )
     h = _asarray(filament_voltage_v) / geo
     return _out(np.interp(h, _H_V, _TG, left=np.nan, right=np.nan))

@@ -184,7 +184,9 @@ def tungsten_resistivity_white_minges_ohm_m(temperature_k: ArrayLike) -> Any:
     G. K. White and M. L. Minges, Int. J. Thermophys. 18, 1269 (1997), tungsten resistivity.
     """
     t = _asarray(temperature_k)
-    rho_uohm_cm = -0.9680 + t * (1.9274e-2 + t * (7.8260e-6 + t * (-1.8517e-9 + t * 2.0790e-13)))
+    rho_uohm_cm = -0.9680 + t * (
+        1.9274e-2 + t * (7.8260e-6 + t * (-1.8517e-9 + t * 2.0790e-13))
+    )
     return _out(_mask_range(rho_uohm_cm * 1e-8, t, *WHITE_MINGES_RANGE_K))
 
 
@@ -217,7 +219,9 @@ def tungsten_total_emissivity(temperature_k: ArrayLike) -> Any:
     return _out(_mask_range(eps, t, *EMISSIVITY_RANGE_K))
 
 
-def tungsten_radiated_power_w_m2(temperature_k: ArrayLike, ambient_k: float = AMBIENT_K) -> Any:
+def tungsten_radiated_power_w_m2(
+    temperature_k: ArrayLike, ambient_k: float = AMBIENT_K
+) -> Any:
     """Net power radiated per unit surface of tungsten [W m^-2].
 
     Parameters
@@ -325,7 +329,9 @@ def tungsten_evaporation_flux_kg_m2_s(temperature_k: ArrayLike) -> Any:
     t = _asarray(temperature_k)
     p = _asarray(tungsten_vapour_pressure_pa(t))
     with np.errstate(divide="ignore", invalid="ignore"):
-        flux = p * np.sqrt(TUNGSTEN_MOLAR_MASS_KG_MOL / (2.0 * np.pi * GAS_CONSTANT_J_MOL_K * t))
+        flux = p * np.sqrt(
+            TUNGSTEN_MOLAR_MASS_KG_MOL / (2.0 * np.pi * GAS_CONSTANT_J_MOL_K * t)
+        )
     return _out(flux)
 
 

@@ -33,7 +33,10 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from tubetrack.constants import TUNGSTEN_DENSITY_KG_M3
-from tubetrack.physics.filament import FilamentSpec, filament_temperature_for_tube_current_k
+from tubetrack.physics.filament import (
+    FilamentSpec,
+    filament_temperature_for_tube_current_k,
+)
 from tubetrack.physics.tungsten import _asarray, _out, tungsten_evaporation_flux_kg_m2_s
 
 __all__ = [
@@ -122,7 +125,9 @@ def exposure_diameter_loss(
     The filament is taken to sit at the exposure temperature (for that tube current, kV and the
     current d/d0) during the prep/boost time and the exposure.
     """
-    t = filament_temperature_for_tube_current_k(spec, tube_current_ma, tube_voltage_kv, diameter_ratio)
+    t = filament_temperature_for_tube_current_k(
+        spec, tube_current_ma, tube_voltage_kv, diameter_ratio
+    )
     hot_s = _asarray(exposure_time_s) + _asarray(prep_time_s)
     return _out(_asarray(diameter_loss_rate_per_s(spec, t, diameter_ratio)) * hot_s)
 
@@ -177,7 +182,9 @@ def integrate_wear(
     after = before
     for _ in range(max(1, int(iterations))):
         t = _asarray(filament_temperature_for_tube_current_k(spec, ma, kv, before))
-        loss = _asarray(diameter_loss_rate_per_s(spec, t)) * hot + standby_rate * np.nan_to_num(ts)
+        loss = _asarray(
+            diameter_loss_rate_per_s(spec, t)
+        ) * hot + standby_rate * np.nan_to_num(ts)
         after = initial_diameter_ratio - np.cumsum(np.nan_to_num(loss))
         before = np.concatenate(([float(initial_diameter_ratio)], after[:-1]))
     return after
@@ -201,7 +208,9 @@ def hot_time_to_end_of_life_s(
 
 
 def end_of_life_reached(
-    diameter_ratio: ArrayLike, hot_spot_factor: float = 1.0, threshold: float = END_OF_LIFE_DIAMETER_LOSS
+    diameter_ratio: ArrayLike,
+    hot_spot_factor: float = 1.0,
+    threshold: float = END_OF_LIFE_DIAMETER_LOSS,
 ) -> Any:
     """True where hot_spot_factor x (1 - d/d0) >= threshold (NaN -> False) [bool]."""
     r = _asarray(diameter_ratio)
