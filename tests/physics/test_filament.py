@@ -228,3 +228,29 @@ def test_nan_scalar_array_forward():
         s, np.array([[100.0], [200.0]]), np.array([60.0, 80.0, 100.0])
     )
     assert grid.shape == (2, 3)
+
+
+def test_forward_chain_by_hand_at_2700_k():
+    # End-to-end check with published numbers only: Richardson-Dushman with the Wolf (1995) pair,
+    # Child-Langmuir perveance form, the documented blend (m = 2) and the heat balance with
+    # Jones (1926) Table I at 2700 K (rho = 81.00 micro-ohm cm, W = 98.8 W cm^-2).
+    s = default_filament_spec("small")
+    k_ev = 8.617333262e-5  # Boltzmann constant [eV/K], CODATA 2018/2022
+    j = 60e4 * 2700.0**2 * math.exp(-4.54 / (k_ev * 2700.0))
+    i_sat = j * s.emitting_area_fraction * math.pi * s.diameter_m * s.length_m
+    i_sc = s.perveance_a_v15 * (80e3) ** 1.5
+    i_tube_ma = (i_sat**-2 + i_sc**-2) ** -0.5 * 1e3
+    assert float(
+        filament_temperature_for_tube_current_k(s, i_tube_ma, 80.0)
+    ) == pytest.approx(2700.0, abs=0.01)
+    i_f = (
+        (math.pi / 2)
+        * math.sqrt(
+            s.radiating_area_fraction * s.diameter_m**3 / (1 - s.end_loss_fraction)
+        )
+        * math.sqrt(98.8e4 / 81.00e-8)
+    )
+    # tolerance 0.1 %: W printed to 3 digits (0.05 %), halved by the square root, plus grid error
+    assert float(
+        filament_current_for_tube_current_a(s, i_tube_ma, 80.0)
+    ) == pytest.approx(i_f, rel=1e-3)

@@ -122,3 +122,31 @@ def test_undeliverable_and_nan_exposures_add_no_wear():
     assert r[1] == r[0] and r[2] == r[0] and r[3] < r[2]
     assert np.isnan(exposure_diameter_loss(s, np.nan, 80.0, 0.1))
     assert np.ndim(diameter_loss_rate_per_s(s, 2600.0)) == 0
+
+
+def test_grouped_integration_restarts_per_filament_and_history_frame():
+    from tubetrack.physics import simulate_filament_history
+
+    s = default_filament_spec("large")
+    ma = np.array([400.0, 600.0, 200.0, 400.0, 600.0])
+    kv = np.array([70.0, 80.0, 90.0, 70.0, 80.0])
+    grouped = integrate_wear(
+        s, ma, kv, 500.0, 500.0, group=np.array(["a", "a", "a", "b", "b"])
+    )
+    alone_a = integrate_wear(s, ma[:3], kv[:3], 500.0, 500.0)
+    alone_b = integrate_wear(s, ma[3:], kv[3:], 500.0, 500.0)
+    assert np.allclose(grouped, np.concatenate([alone_a, alone_b]), rtol=0, atol=1e-15)
+    hist = simulate_filament_history(
+        s, ma, kv, 500.0, 500.0, group=np.array([1, 1, 1, 2, 2])
+    )
+    assert (
+        hist["diameter_ratio"].iloc[0] == 1.0 and hist["diameter_ratio"].iloc[3] == 1.0
+    )
+    assert np.allclose(hist["diameter_ratio_after"], grouped)
+    assert np.allclose(
+        hist["diameter_ratio"] - hist["diameter_loss"], hist["diameter_ratio_after"]
+    )
+    # a filament running 20 K hotter wears faster (about 1.4 %/K from the AIH slope 44094 ln10 / T^2)
+    hot = integrate_wear(s, ma[:3], kv[:3], 500.0, 500.0, temperature_offset_k=20.0)
+    ratio = (1 - hot[-1]) / (1 - alone_a[-1])
+    assert 1.2 < ratio < 1.45

@@ -80,6 +80,7 @@ from tubetrack.physics.wear import (
     hot_time_to_end_of_life_s,
     integrate_wear,
     mass_loss_from_diameter_loss,
+    simulate_filament_history,
     thinning_rate_m_s,
 )
 
@@ -123,6 +124,7 @@ __all__ = [
     "saturation_current_for_tube_current_a",
     "schottky_lowering_ev",
     "series_resistance_for_filament_voltage_ohm",
+    "simulate_filament_history",
     "thinning_rate_m_s",
     "transformer_primary_current_a",
     "transformer_secondary_voltage_v",
