@@ -211,7 +211,7 @@ def test_systems_calibrations_events_downtime(tmp_path):
     assert list(by_kind) == ["systems", "exposures", "calibrations", "events", "downtime"]
     assert (by_kind["exposures"].rows_accepted, by_kind["exposures"].rows_rejected) == (1, 1)
     assert rejects(con, root / "exposures-F-1.csv")[0][3] == (
-        'out of range: exposure_time_s is "1000000" (= 1000000.0 s), outside 0.0005-30 (fluoroscopy 600) s; '
+        'out of range: exposure_time_s is "1000000" (= 1000000.0 s), outside 0.0005-600 (fluoroscopy) s; '
         "fix the row or check the unit"
     )
     assert (by_kind["calibrations"].rows_accepted, by_kind["calibrations"].rows_duplicate) == (2, 1)

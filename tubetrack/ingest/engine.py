@@ -917,6 +917,7 @@ def _ingest_in_txn(
         unions.append(
             f"SELECT {line} AS line, {fexpr} AS field, {raw} AS raw_value, s.{qi(c)} AS reason "
             f"FROM {_STAGE} s {join} WHERE s._bad AND s.{qi(c)} IS NOT NULL"
+            + ("" if fname is None else " AND s.e___row IS NULL")
         )
     reject_sql = " UNION ALL ".join(unions)
     csv_reasons = {

@@ -92,11 +92,12 @@ def range_reason_sql(kind: Kind, name: str, value: str, raw: str) -> str | None:
     if rng is None:
         return f"CASE {finite} ELSE NULL END"
     high = _num(rng.high)
-    high_txt = _fmt(rng.high)
+    high_txt = f"'{_fmt(rng.high)}'"
     if name == "exposure_time_s" and kind.name == "exposures":
         # fluoroscopy systems may log long runs (column _fluoro set by the reader from systems)
-        high = f"(CASE WHEN _fluoro THEN {_num(FLUORO_MAX_EXPOSURE_TIME_S)} ELSE {high} END)"
-        high_txt = f"{_fmt(rng.high)} (fluoroscopy {_fmt(FLUORO_MAX_EXPOSURE_TIME_S)})"
+        fl = FLUORO_MAX_EXPOSURE_TIME_S
+        high = f"(CASE WHEN _fluoro THEN {_num(fl)} ELSE {high} END)"
+        high_txt = f"(CASE WHEN _fluoro THEN '{_fmt(fl)} (fluoroscopy)' ELSE {high_txt} END)"
     unit = f" {rng.unit}" if rng.unit and rng.unit != "count" else ""
     parts = [finite]
     mix = MIXUPS.get(name)
@@ -111,8 +112,8 @@ def range_reason_sql(kind: Kind, name: str, value: str, raw: str) -> str | None:
         )
     parts.append(
         f"WHEN {value} < {_num(rng.low)} OR {value} > {high} THEN 'out of range: {name} is ' || "
-        f"{raw} || ' (= ' || CAST({value} AS VARCHAR) || '{unit}), outside {_fmt(rng.low)}-"
-        f"{high_txt}{unit}; fix the row or check the unit'"
+        f"{raw} || ' (= ' || CAST({value} AS VARCHAR) || '{unit}), outside {_fmt(rng.low)}-' || "
+        f"{high_txt} || '{unit}; fix the row or check the unit'"
     )
     return "CASE " + " ".join(parts) + " ELSE NULL END"
 
