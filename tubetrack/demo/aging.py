@@ -23,6 +23,7 @@ exact up to the protocol-independence of g (their spread is well below 1 % over 
 from __future__ import annotations
 
 import dataclasses
+import functools
 from dataclasses import dataclass
 from typing import Any
 
@@ -31,6 +32,9 @@ import numpy as np
 #: Diameter ratios at which rates and filament currents are tabulated (linear interpolation
 #: between them; the filament current is smooth in d, interpolation error < 1e-4 relative).
 D_GRID = np.array([1.0, 0.98, 0.96, 0.94, 0.92, 0.90, 0.88])
+
+#: Points of the fine diameter-loss grid on which G(loss) is integrated and inverted.
+FINE_POINTS = 241
 
 #: Default end-of-life diameter loss when the physics package is absent [1].
 FALLBACK_END_OF_LIFE = 0.0513
@@ -55,6 +59,7 @@ _NAMES = (
 )
 
 
+@functools.lru_cache(maxsize=None)
 def _ph(name: str) -> Any:
     """A contract-D name from :mod:`tubetrack.physics` (or its submodules while the package's
     ``__init__`` does not re-export it yet)."""
@@ -202,9 +207,11 @@ def wear_table(
         g = (w[:, None] * shape).sum(axis=0) / w.sum()
     else:
         g = np.ones(len(D_GRID))
-    loss = 1.0 - D_GRID
-    # G(loss) = integral dx / g, trapezoid on the grid, extended linearly past it
-    inv = 1.0 / np.maximum(g, 1e-9)
+    # G(loss) = integral dx / g: g is interpolated (log-linear) from the coarse grid onto a fine
+    # one and integrated by the trapezoid rule there, so the inverse is accurate near 0 too
+    loss = np.linspace(0.0, 1.0 - D_GRID[-1], FINE_POINTS)
+    log_g = np.interp(loss, 1.0 - D_GRID, np.log(np.maximum(g, 1e-9)))
+    inv = np.exp(-log_g)
     g_cum = np.concatenate([[0.0], np.cumsum(0.5 * (inv[1:] + inv[:-1]) * np.diff(loss))])
     del n_p
     return WearTable(

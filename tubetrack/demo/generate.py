@@ -256,8 +256,6 @@ def _make_workload(
     modality = systems["modality"].to_numpy()
     around = systems["gen_around_clock"].to_numpy()
     base = np.array([MEAN_PER_DAY[m] for m in modality]) * rng.uniform(0.6, 1.4, n_sys)
-    if exposures_per_day is not None:
-        base = base * (float(exposures_per_day) / base.mean())
     wd = (weekday0 + np.arange(n_days)) % 7
     weekend = wd >= 5
     day_factor_work = np.where(weekend, 0.08, 1.0)
@@ -265,6 +263,8 @@ def _make_workload(
     season = 1.0 + 0.08 * np.cos(2 * np.pi * (np.arange(n_days) - 120) / 365.25)
     lam = base[:, None] * np.where(around[:, None], day_factor_clock[None, :], day_factor_work[None, :])
     lam = lam * season[None, :]
+    if exposures_per_day is not None:
+        lam = lam * (float(exposures_per_day) / lam.mean())
     counts = rng.poisson(lam).ravel()
     n = int(counts.sum())
     sys_day = np.repeat(np.arange(n_sys * n_days, dtype=np.int64), counts)
@@ -335,9 +335,9 @@ def generate_fleet(
     start
         First day of the logs (UTC date).
     exposures_per_day
-        Mean logged exposures per system and day over the fleet [1/day]; ``None`` keeps the
-        modality defaults (about 16 for radiographic rooms, 8 mobile, 10 fluoroscopy on working
-        days).
+        Mean logged exposures per system and calendar day over the fleet (before downtime)
+        [1/day]; ``None`` keeps the modality defaults (on working days about 12 for
+        radiographic rooms, 6 for mobile units, 8 for fluoroscopy rooms).
     physics
         Use :mod:`tubetrack.physics` for temperatures, wear rates and filament currents (``False``:
         a fast empirical stand-in, for benchmarks of the pipeline only).
@@ -502,6 +502,7 @@ def _simulate_tubes(
     pm = downtime[downtime["cause"] == "preventive"]
     pm_end_by_sys = {int(s): g["end_ms"].to_numpy() for s, g in pm.groupby("sys")}
     hot_all = w["t_exp"] + w["prep"]
+    sys_rows = systems[["modality", "gen_hold_prep"]].to_dict("records")
     tubes: list[dict[str, Any]] = []
     truth_days: list[pd.DataFrame] = []
     steps: list[dict[str, Any]] = []
@@ -513,7 +514,7 @@ def _simulate_tubes(
     for s in range(len(systems)):
         if s % 250 == 0 and s:
             say(f"  {s}/{len(systems)} systems")
-        srow = systems.iloc[s]
+        srow = sys_rows[s]
         a, b = int(sys_bounds[s]), int(sys_bounds[s + 1])
         pa, pb = int(prog_start[s]), int(prog_start[s + 1])
         ts = w["ts_ms"][a:b]
@@ -626,28 +627,24 @@ def _simulate_tubes(
                 if m.any():
                     true_i = aging.current_at(tables[f], p_t[:n_use][m], d_e[m])
                     cur_of[idx[m]] = true_i * np.asarray(gains[f])[k_e[m]]
-            # filament table after each calibration inside the log span
-            cal_rows = []
-            for k, c_ms in enumerate(cal_ms):
-                if c_ms < start_ms or c_ms >= end_ms:
-                    continue
-                n_before = int(np.searchsorted(ts_t[:n_use], c_ms))
+            # filament table after each calibration inside the log span (one physics call per
+            # filament for all its calibrations)
+            k_in = np.flatnonzero((cal_arr >= start_ms) & (cal_arr < end_ms))
+            if len(k_in):
+                n_before = np.searchsorted(ts_t[:n_use], cal_arr[k_in])
                 for f in ("small", "large"):
-                    lf = pre_loss[f] if n_before == 0 else float(loss[f][n_before - 1])
+                    lf_all = np.concatenate([[pre_loss[f]], loss[f][:n_use]])[n_before]
                     st = np.array(CAL_STATIONS_MA[f], dtype=float)
-                    mag, kvg = np.meshgrid(st, np.array(CAL_KV))
+                    mag, kvg = (x.ravel() for x in np.meshgrid(st, np.array(CAL_KV)))
+                    m = len(mag)
                     cur = aging.filament_current_a(
-                        fil[f].spec, mag.ravel(), kvg.ravel(), np.full(mag.size, 1.0 - lf)
-                    ) * gains[f][k]
-                    cal_rows.append(
-                        pd.DataFrame(
-                            {"timestamp_utc_ms": c_ms, "sys": s, "tube": len(tubes), "focal_spot": f,
-                             "tube_voltage_kv": kvg.ravel(), "tube_current_ma": mag.ravel(),
-                             "filament_current_a": np.round(cur, 3)}
-                        )
+                        fil[f].spec, np.tile(mag, len(k_in)), np.tile(kvg, len(k_in)),
+                        np.repeat(1.0 - lf_all, m),
+                    ) * np.repeat(np.asarray(gains[f])[k_in], m)
+                    cals.append(
+                        (np.repeat(cal_arr[k_in], m), s, len(tubes), f, np.tile(kvg, len(k_in)),
+                         np.tile(mag, len(k_in)), np.round(cur, 3))
                     )
-            if cal_rows:
-                cals.append(pd.concat(cal_rows, ignore_index=True))
             # arc precursor for some arcing failures; rotor precursor for some bearing failures
             precursor = False
             if failed and cause == "arcing" and rng.random() < 0.5:
@@ -703,9 +700,7 @@ def _simulate_tubes(
             n_at = np.searchsorted(ts_t[:n_use], day_end_ms, side="left")
             for f in ("small", "large"):
                 lf = np.concatenate([[pre_loss[f]], loss[f][:n_use]])[n_at]
-                truth_days.append(
-                    pd.DataFrame({"tube": len(tubes) - 1, "focal_spot": f, "day": dd, "diameter_loss": lf})
-                )
+                truth_days.append((len(tubes) - 1, f, dd, lf))
             if not failed:
                 break
             # repair gap: the system is down until the new tube is installed and calibrated
@@ -834,7 +829,19 @@ def _assemble(
     ).reset_index(drop=True)
     # calibrations ---------------------------------------------------------------------------
     if sim["cals"]:
-        c = pd.concat(sim["cals"], ignore_index=True)
+        parts = sim["cals"]
+        lens = [len(p[0]) for p in parts]
+        c = pd.DataFrame(
+            {
+                "timestamp_utc_ms": np.concatenate([p[0] for p in parts]),
+                "sys": np.repeat([p[1] for p in parts], lens),
+                "tube": np.repeat([p[2] for p in parts], lens),
+                "focal_spot": np.repeat([p[3] for p in parts], lens),
+                "tube_voltage_kv": np.concatenate([p[4] for p in parts]),
+                "tube_current_ma": np.concatenate([p[5] for p in parts]),
+                "filament_current_a": np.concatenate([p[6] for p in parts]),
+            }
+        )
         calibrations = pd.DataFrame(
             {
                 "timestamp_utc": _ts(c["timestamp_utc_ms"].to_numpy()).to_numpy(),
@@ -895,12 +902,21 @@ def _assemble(
             "n_exposures": tr["n_exposures"],
         }
     )
-    td = pd.concat(sim["truth_days"], ignore_index=True) if sim["truth_days"] else pd.DataFrame()
+    tdp = sim["truth_days"]
+    tlen = [len(p[2]) for p in tdp]
+    td = pd.DataFrame(
+        {
+            "tube": np.repeat(np.array([p[0] for p in tdp], dtype=np.int64), tlen),
+            "focal_spot": np.repeat(np.array([p[1] for p in tdp], dtype=object), tlen),
+            "day": np.concatenate([p[2] for p in tdp]) if tdp else np.array([], dtype=np.int64),
+            "diameter_loss": np.concatenate([p[3] for p in tdp]) if tdp else np.array([]),
+        }
+    )
     truth_diameter = pd.DataFrame(
         {
             "tube_id": tube_ids[td["tube"].to_numpy()],
             "focal_spot": td["focal_spot"].to_numpy(),
-            "day": (start_ts + pd.to_timedelta(td["day"].to_numpy(), unit="D")).to_numpy(),
+            "day": (np.datetime64(start_ts.date(), "D") + td["day"].to_numpy().astype("timedelta64[D]")).astype("datetime64[s]"),
             "diameter_loss": td["diameter_loss"].to_numpy(),
         }
     )
