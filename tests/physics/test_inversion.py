@@ -200,3 +200,62 @@ def test_nan_and_bad_input():
     assert r.shape == (3,)
     with pytest.raises(InputError, match="no usable"):
         fit_baseline(s, [np.nan], [80.0], [4.0])
+
+
+def test_batch_baseline_fit_matches_single_fits_and_builds_row_specs():
+    from tubetrack.physics import fit_baseline_groups, spec_for_rows
+
+    rng = np.random.default_rng(11)
+    n_groups = 12
+    ma, kv = (
+        a.ravel()
+        for a in np.meshgrid(
+            [200.0, 400.0, 600.0], [60.0, 70.0, 81.0, 90.0], indexing="ij"
+        )
+    )
+    gi = np.repeat(np.arange(n_groups), ma.size)
+    big_ma, big_kv = np.tile(ma, n_groups), np.tile(kv, n_groups)
+    base = default_filament_spec("large")
+    true = base.replace(
+        perveance_a_v15=rng.uniform(5e-8, 1.2e-7, n_groups)[gi],
+        current_scale=rng.uniform(0.9, 1.15, n_groups)[gi],
+        emitting_area_fraction=rng.uniform(0.3, 0.8, n_groups)[gi],
+    )
+    i_f = filament_current_for_tube_current_a(true, big_ma, big_kv) * (
+        1 + 0.002 * rng.standard_normal(big_ma.size)
+    )
+    labels = np.array([f"tube{g:02d}|large" for g in gi])
+    fitted = fit_baseline_groups(base, labels, big_ma, big_kv, i_f)
+    assert len(fitted) == n_groups and fitted["converged"].all()
+    for g in (0, 5, 11):
+        sel = gi == g
+        single = fit_baseline(base, big_ma[sel], big_kv[sel], i_f[sel])
+        row = fitted.set_index("group").loc[f"tube{g:02d}|large"]
+        assert row["current_scale"] == pytest.approx(single.current_scale, rel=2e-3)
+        assert row["perveance_a_v15"] == pytest.approx(single.perveance_a_v15, rel=2e-2)
+    rows = spec_for_rows(base, fitted, labels)
+    comp = kv_compensation_ratio(rows, big_ma, big_kv, 80.0)
+    assert np.allclose(
+        comp, kv_compensation_ratio(true, big_ma, big_kv, 80.0), rtol=6e-3
+    )
+    unknown = spec_for_rows(base, fitted, np.array(["nope", labels[0]]))
+    out = filament_current_for_tube_current_a(unknown, 400.0, 80.0)
+    assert np.isnan(out[0]) and np.isfinite(out[1])
+
+
+def test_row_specs_invert_with_nan_for_unknown_groups():
+    from tubetrack.physics import fit_baseline_groups, spec_for_rows
+
+    base = default_filament_spec("small")
+    ma = np.array([100.0, 200.0, 100.0, 200.0])
+    kv = np.array([70.0, 80.0, 70.0, 80.0])
+    i_f = filament_current_for_tube_current_a(base, ma, kv)
+    fitted = fit_baseline_groups(base, ["a", "a", "b", "b"], ma, kv, i_f)
+    rows = spec_for_rows(base, fitted, np.array(["a", "b", "zz"]))
+    frame = invert_current_ratio(np.array([0.95, 0.95, 0.95]), rows, 200.0, 80.0, 0.002)
+    assert np.all(np.isfinite(frame["diameter_ratio"].iloc[:2])) and np.isnan(
+        frame["diameter_ratio"].iloc[2]
+    )
+    assert frame["diameter_ratio"].iloc[0] == pytest.approx(
+        frame["diameter_ratio"].iloc[1], abs=1e-3
+    )

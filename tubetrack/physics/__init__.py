@@ -50,9 +50,11 @@ from tubetrack.physics.inversion import (
     current_ratio_for_diameter_ratio,
     diameter_ratio_from_current_ratio,
     fit_baseline,
+    fit_baseline_groups,
     inversion_exponent,
     invert_current_ratio,
     kv_compensation_ratio,
+    spec_for_rows,
 )
 from tubetrack.physics.thermal import (
     filament_current_at_temperature_a,
@@ -110,6 +112,7 @@ __all__ = [
     "filament_temperature_for_voltage_k",
     "filament_voltage_at_temperature_v",
     "fit_baseline",
+    "fit_baseline_groups",
     "hot_time_to_end_of_life_s",
     "integrate_wear",
     "inversion_exponent",
@@ -125,6 +128,7 @@ __all__ = [
     "schottky_lowering_ev",
     "series_resistance_for_filament_voltage_ohm",
     "simulate_filament_history",
+    "spec_for_rows",
     "thinning_rate_m_s",
     "transformer_primary_current_a",
     "transformer_secondary_voltage_v",

@@ -86,6 +86,12 @@ class FilamentSpec:
     current_scale : float
         Logged filament current / model current [1]: sensor gain and geometry errors, fitted
         per tube from a baseline (:func:`tubetrack.physics.inversion.fit_baseline`).
+
+    Notes
+    -----
+    Numeric fields may also be numpy arrays (one value per row of the inputs, e.g. per-tube
+    fitted values from :func:`tubetrack.physics.inversion.fit_baseline_groups`); they then
+    broadcast against the per-row arguments of every model function.
     """
 
     focal_spot: str = "large"
@@ -104,32 +110,40 @@ class FilamentSpec:
     current_scale: float = 1.0
 
     def __post_init__(self) -> None:
+        def arr(name: str) -> Any:
+            return np.asarray(getattr(self, name), dtype=float)
+
         checks = {
-            "diameter_m": self.diameter_m > 0,
-            "length_m": self.length_m > 0,
-            "emitting_area_fraction": 0 < self.emitting_area_fraction <= 1,
-            "radiating_area_fraction": 0 < self.radiating_area_fraction <= 1,
-            "end_loss_fraction": 0 <= self.end_loss_fraction < 1,
-            "perveance_a_v15": self.perveance_a_v15 > 0,
-            "blend_sharpness": self.blend_sharpness > 0,
-            "hot_spot_factor": self.hot_spot_factor >= 1,
-            "turns_ratio": self.turns_ratio > 0,
-            "current_scale": self.current_scale > 0,
+            "diameter_m": arr("diameter_m") > 0,
+            "length_m": arr("length_m") > 0,
+            "emitting_area_fraction": (arr("emitting_area_fraction") > 0)
+            & (arr("emitting_area_fraction") <= 1),
+            "radiating_area_fraction": (arr("radiating_area_fraction") > 0)
+            & (arr("radiating_area_fraction") <= 1),
+            "end_loss_fraction": (arr("end_loss_fraction") >= 0)
+            & (arr("end_loss_fraction") < 1),
+            "perveance_a_v15": arr("perveance_a_v15") > 0,
+            "blend_sharpness": arr("blend_sharpness") > 0,
+            "hot_spot_factor": arr("hot_spot_factor") >= 1,
+            "turns_ratio": arr("turns_ratio") > 0,
+            "current_scale": arr("current_scale") > 0,
         }
         for name, ok in checks.items():
-            if not ok or not np.isfinite(getattr(self, name)):
+            value = arr(name)
+            # NaN is allowed (it marks unknown rows and propagates); other bad values are not
+            if not np.all(ok | np.isnan(value)) or np.any(np.isinf(value)):
                 raise InputError(
                     f"FilamentSpec.{name} is {getattr(self, name)!r}, outside its valid range. "
                     "Check the value and its unit (SI: metres, A V^-1.5, fractions 0-1)."
                 )
 
     @property
-    def surface_area_m2(self) -> float:
+    def surface_area_m2(self) -> Any:
         """Wire surface pi d0 L [m^2]."""
-        return float(np.pi * self.diameter_m * self.length_m)
+        return np.pi * np.asarray(self.diameter_m) * np.asarray(self.length_m)
 
     @property
-    def emitting_area_m2(self) -> float:
+    def emitting_area_m2(self) -> Any:
         """Emitting area f_e pi d0 L of the new wire [m^2]."""
         return self.emitting_area_fraction * self.surface_area_m2
 
