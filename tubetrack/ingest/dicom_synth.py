@@ -60,7 +60,12 @@ EXPLICIT_LE = "1.2.840.10008.1.2.1"  # Explicit VR Little Endian
 FOCAL_SPOT_NOMINAL_MM = {"small": 0.6, "large": 1.2}
 
 #: Modality written for each canonical system modality.
-IMAGE_MODALITY = {"radiographic": "DX", "mobile": "CR", "fluoroscopy": "RF", "mammography": "MG"}
+IMAGE_MODALITY = {
+    "radiographic": "DX",
+    "mobile": "CR",
+    "fluoroscopy": "RF",
+    "mammography": "MG",
+}
 
 MANUFACTURER = "Invented Imaging (synthetic)"
 
@@ -81,13 +86,17 @@ def fake_uid(rng: random.Random) -> str:
     return "2.25." + str(uuid.UUID(int=rng.getrandbits(128), version=4).int)
 
 
-def device_for_system(system_id: str, modality: str | None, model_label: str | None, seed: int) -> Device:
+def device_for_system(
+    system_id: str, modality: str | None, model_label: str | None, seed: int
+) -> Device:
     """Invent a stable serial number and station name for one of our systems."""
     digest = hashlib.sha256(f"{seed}:{system_id}".encode()).hexdigest()
     serial = "SYN" + str(int(digest[:12], 16) % 10**7).zfill(7)
     station = ("ST-" + "".join(ch for ch in str(system_id) if ch.isalnum()))[:16]
     mod = IMAGE_MODALITY.get(str(modality or "radiographic"), "DX")
-    return Device(str(system_id), serial, station, str(model_label or "synthetic unit"), mod)
+    return Device(
+        str(system_id), serial, station, str(model_label or "synthetic unit"), mod
+    )
 
 
 # ---------------------------------------------------------------------------------------------
@@ -109,7 +118,10 @@ def _code(value: str, scheme: str, meaning: str) -> Dataset:
 C_REPORT = ("113701", "X-Ray Radiation Dose Report")
 C_PROCEDURE = ("121058", "Procedure reported")
 C_PROJECTION = ("113704", "Projection X-Ray")
-C_CT_PROCEDURE = ("P5-08000", "Computed Tomography X-Ray")  # SRT code for CT; from memory
+C_CT_PROCEDURE = (
+    "P5-08000",
+    "Computed Tomography X-Ray",
+)  # SRT code for CT; from memory
 C_EVENT = ("113706", "Irradiation Event X-Ray Data")
 C_CT_EVENT = ("113819", "CT Acquisition")
 C_CT_ACQ_PARAMS = ("113822", "CT Acquisition Parameters")
@@ -135,7 +147,9 @@ U_MM = ("mm", "mm")
 U_NONE = ("1", "no units")
 
 
-def _item(value_type: str, concept: tuple[str, str], relationship: str = "CONTAINS") -> Dataset:
+def _item(
+    value_type: str, concept: tuple[str, str], relationship: str = "CONTAINS"
+) -> Dataset:
     from pydicom.dataset import Dataset
 
     it = Dataset()
@@ -162,7 +176,9 @@ def _ds(value: float) -> str:
     return text if len(text) <= 16 else f"{float(value):.8e}"[:16]
 
 
-def _container(concept: tuple[str, str], children: list[Dataset], relationship: str = "CONTAINS") -> Dataset:
+def _container(
+    concept: tuple[str, str], children: list[Dataset], relationship: str = "CONTAINS"
+) -> Dataset:
     it = _item("CONTAINER", concept, relationship)
     it.ContinuityOfContent = "SEPARATE"
     it.ContentSequence = children
@@ -181,7 +197,14 @@ def _offset_text(offset_minutes: int) -> str:
     return f"{sign}{m // 60:02d}{m % 60:02d}"
 
 
-def _base(sop_class: str, sop_uid: str, modality: str, device: Device, study_uid: str, series_uid: str) -> Dataset:
+def _base(
+    sop_class: str,
+    sop_uid: str,
+    modality: str,
+    device: Device,
+    study_uid: str,
+    series_uid: str,
+) -> Dataset:
     from pydicom.dataset import Dataset, FileMetaDataset
 
     ds = Dataset()
@@ -201,7 +224,9 @@ def _base(sop_class: str, sop_uid: str, modality: str, device: Device, study_uid
     ds.ManufacturerModelName = device.model_label[:64]
     ds.DeviceSerialNumber = device.device_serial
     ds.StationName = device.station_name
-    ds.PatientName = ""  # type 2 attributes, present and empty: no patient data is invented
+    ds.PatientName = (
+        ""  # type 2 attributes, present and empty: no patient data is invented
+    )
     ds.PatientID = ""
     return ds
 
@@ -292,7 +317,14 @@ def rdsr_dataset(
     """
     import math
 
-    ds = _base(SOP_CLASS["RDSR"], fake_uid(rng), "CT" if ct else "DX", device, fake_uid(rng), fake_uid(rng))
+    ds = _base(
+        SOP_CLASS["RDSR"],
+        fake_uid(rng),
+        "CT" if ct else "DX",
+        device,
+        fake_uid(rng),
+        fake_uid(rng),
+    )
     ds.Modality = "SR"
     first = events["timestamp_local"].min() if len(events) else None
     if first is not None:
@@ -314,7 +346,9 @@ def rdsr_dataset(
     ds.ContentTemplateSequence = [tpl]
     proc = _item("CODE", C_PROCEDURE, "HAS CONCEPT MOD")
     proc.ConceptCodeSequence = [
-        _code(C_CT_PROCEDURE[0], "SRT", C_CT_PROCEDURE[1]) if ct else _code(C_PROJECTION[0], "DCM", C_PROJECTION[1])
+        _code(C_CT_PROCEDURE[0], "SRT", C_CT_PROCEDURE[1])
+        if ct
+        else _code(C_PROJECTION[0], "DCM", C_PROJECTION[1])
     ]
     children: list[Dataset] = [proc]
 
@@ -323,13 +357,23 @@ def rdsr_dataset(
 
     cols = set(events.columns)
     for rec in events.to_dict("records"):
-        off = rec.get("offset_minutes", utc_offset_minutes) if "offset_minutes" in cols else utc_offset_minutes
+        off = (
+            rec.get("offset_minutes", utc_offset_minutes)
+            if "offset_minutes" in cols
+            else utc_offset_minutes
+        )
         dt, _, _ = _dicom_dt(rec["timestamp_local"])
         when = _item("DATETIME", C_DT_STARTED)
         when.DateTime = dt + (_offset_text(int(off)) if ok(off) else "")
         uid_item = _item("UIDREF", C_EVENT_UID)
-        uid_item.UID = rec.get("event_uid") if ok(rec.get("event_uid")) else fake_uid(rng)
-        kv, ma, t_s = rec.get("tube_voltage_kv"), rec.get("tube_current_ma"), rec.get("exposure_time_s")
+        uid_item.UID = (
+            rec.get("event_uid") if ok(rec.get("event_uid")) else fake_uid(rng)
+        )
+        kv, ma, t_s = (
+            rec.get("tube_voltage_kv"),
+            rec.get("tube_current_ma"),
+            rec.get("exposure_time_s"),
+        )
         mas, fs = rec.get("exposure_mas"), rec.get("focal_spot_mm")
         if ct:
             src: list[Dataset] = []
@@ -344,7 +388,9 @@ def rdsr_dataset(
             if ok(t_s):
                 acq.append(_num(C_EXPOSURE_TIME, t_s, U_S))
             acq.append(_container(C_CT_SOURCE, src))
-            ev = _container(C_CT_EVENT, [uid_item, when, _container(C_CT_ACQ_PARAMS, acq)])
+            ev = _container(
+                C_CT_EVENT, [uid_item, when, _container(C_CT_ACQ_PARAMS, acq)]
+            )
         else:
             items = [when, uid_item]
             if ok(kv):
@@ -385,7 +431,9 @@ def _local_times(ts_utc: pd.Series, tz: str) -> tuple[pd.Series, pd.Series]:
     utc = pd.to_datetime(ts_utc).dt.tz_localize("UTC")
     local = utc.dt.tz_convert(tz)
     naive_local = local.dt.tz_localize(None)
-    offset_min = ((naive_local - utc.dt.tz_localize(None)).dt.total_seconds() // 60).astype(int)
+    offset_min = (
+        (naive_local - utc.dt.tz_localize(None)).dt.total_seconds() // 60
+    ).astype(int)
     return naive_local, offset_min
 
 
@@ -445,19 +493,29 @@ def write_dicom_workload(
         if col not in sys_df.columns:
             sys_df[col] = None
     devices = {
-        str(r.system_id): device_for_system(str(r.system_id), r.modality, r.model_label, int(seed))
+        str(r.system_id): device_for_system(
+            str(r.system_id), r.modality, r.model_label, int(seed)
+        )
         for r in sys_df.itertuples(index=False)
     }
     e = exposures_df.copy()
     e["system_id"] = e["system_id"].astype(str)
-    e = e[e["system_id"].isin(list(devices))].sort_values(["system_id", "timestamp_utc"], kind="stable")
+    e = e[e["system_id"].isin(list(devices))].sort_values(
+        ["system_id", "timestamp_utc"], kind="stable"
+    )
     e = e.reset_index(drop=True)
     if "exposure_mas" not in e.columns:
         e["exposure_mas"] = e["tube_current_ma"] * e["exposure_time_s"]
-    e["exposure_mas"] = e["exposure_mas"].fillna(e["tube_current_ma"] * e["exposure_time_s"])
-    e["exposure_time_s"] = e["exposure_time_s"].fillna(e["exposure_mas"] / e["tube_current_ma"])
+    e["exposure_mas"] = e["exposure_mas"].fillna(
+        e["tube_current_ma"] * e["exposure_time_s"]
+    )
+    e["exposure_time_s"] = e["exposure_time_s"].fillna(
+        e["exposure_mas"] / e["tube_current_ma"]
+    )
     e["timestamp_local"], e["offset_minutes"] = _local_times(e["timestamp_utc"], tz)
-    e["focal_spot_mm"] = e["focal_spot"].astype(str).map(FOCAL_SPOT_NOMINAL_MM).astype(float)
+    e["focal_spot_mm"] = (
+        e["focal_spot"].astype(str).map(FOCAL_SPOT_NOMINAL_MM).astype(float)
+    )
     e["local_day"] = e["timestamp_local"].dt.strftime("%Y%m%d")
     e["event_uid"] = [fake_uid(rng) for _ in range(len(e))]
 
@@ -465,9 +523,16 @@ def write_dicom_workload(
     for (system_id, day), grp in e.groupby(["system_id", "local_day"], sort=True):
         dev = devices[str(system_id)]
         ds = rdsr_dataset(
-            grp, device=dev, utc_offset_minutes=int(grp["offset_minutes"].iloc[0]), rng=rng
+            grp,
+            device=dev,
+            utc_offset_minutes=int(grp["offset_minutes"].iloc[0]),
+            rng=rng,
         )
-        written.append(save_dataset(ds, out / "rdsr" / f"{dev.station_name}_{day}.dcm", deflate=deflate))
+        written.append(
+            save_dataset(
+                ds, out / "rdsr" / f"{dev.station_name}_{day}.dcm", deflate=deflate
+            )
+        )
 
     n_img = int(min(max_images, round(len(e) * image_fraction)))
     if n_img > 0:
@@ -480,7 +545,8 @@ def write_dicom_workload(
             dev = devices[str(rec["system_id"])]
             ds = image_dataset(
                 device=dev,
-                timestamp_local=rec["timestamp_local"] + pd.Timedelta(seconds=float(lag)),
+                timestamp_local=rec["timestamp_local"]
+                + pd.Timedelta(seconds=float(lag)),
                 utc_offset_minutes=int(rec["offset_minutes"]),
                 tube_voltage_kv=float(rec["tube_voltage_kv"]),
                 tube_current_ma=float(rec["tube_current_ma"]),
@@ -489,11 +555,22 @@ def write_dicom_workload(
                 focal_spot_mm=float(rec["focal_spot_mm"]),
                 rng=rng,
             )
-            written.append(save_dataset(ds, out / "images" / f"{dev.station_name}_{k:04d}", deflate=deflate))
+            written.append(
+                save_dataset(
+                    ds, out / "images" / f"{dev.station_name}_{k:04d}", deflate=deflate
+                )
+            )
 
     if write_mapping:
         mp = pd.DataFrame(
-            [{"device_serial": d.device_serial, "station_name": d.station_name, "system_id": d.system_id} for d in devices.values()]
+            [
+                {
+                    "device_serial": d.device_serial,
+                    "station_name": d.station_name,
+                    "system_id": d.system_id,
+                }
+                for d in devices.values()
+            ]
         ).sort_values("system_id")
         path = out / "dicom-devices.csv"
         mp.to_csv(path, index=False, lineterminator="\n")
@@ -506,7 +583,14 @@ def devices_frame(systems: Iterable[Device]) -> pd.DataFrame:
     import pandas as pd
 
     return pd.DataFrame(
-        [{"device_serial": d.device_serial, "station_name": d.station_name, "system_id": d.system_id} for d in systems],
+        [
+            {
+                "device_serial": d.device_serial,
+                "station_name": d.station_name,
+                "system_id": d.system_id,
+            }
+            for d in systems
+        ],
         columns=["device_serial", "station_name", "system_id"],
     )
 
