@@ -259,3 +259,16 @@ def test_row_specs_invert_with_nan_for_unknown_groups():
     assert frame["diameter_ratio"].iloc[0] == pytest.approx(
         frame["diameter_ratio"].iloc[1], abs=1e-3
     )
+
+
+def test_station_beyond_nominal_space_charge_limit_still_inverts_with_warning():
+    from tubetrack.errors import TubetrackWarning
+
+    s = default_filament_spec(
+        "small"
+    )  # cannot deliver 600 mA at 50 kV (P V^1.5 = 358 mA)
+    with pytest.warns(TubetrackWarning, match="space-charge limit"):
+        r, se = diameter_ratio_from_current_ratio(
+            np.array([0.93, 0.93]), s, np.array([600.0, 200.0]), 50.0, 0.002
+        )
+    assert np.all(np.isfinite(r)) and abs(r[0] - r[1]) < 2e-3

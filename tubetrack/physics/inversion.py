@@ -38,6 +38,7 @@ from numpy.typing import ArrayLike
 
 from tubetrack.constants import BOLTZMANN_EV_K
 from tubetrack.errors import AnalysisError, InputError
+from tubetrack.physics.emission import richardson_dushman_temperature_k
 from tubetrack.physics.filament import (
     FilamentSpec,
     filament_current_for_tube_current_a,
@@ -106,6 +107,49 @@ def _h_current(t_k: Any) -> Any:
     return np.interp(t_k, thermal._TG, thermal._H_I, left=np.nan, right=np.nan)
 
 
+def _fallback_temperature(spec: FilamentSpec, t0: Any, ma: Any, kv: Any) -> Any:
+    """Baseline temperature where the spec cannot deliver the station (above P V^1.5).
+
+    The ratio inversion needs T0 only weakly (n changes by < 0.01 per 100 K), so a station the
+    nominal spec cannot deliver (the real tube's perveance is higher) is given the temperature at
+    which the saturation current equals 1.5 x the tube current (mid-transition), with a warning.
+    """
+    spec_ok = np.isfinite(
+        np.asarray(spec.perveance_a_v15)
+        * np.asarray(spec.emitting_area_fraction)
+        * np.asarray(spec.current_scale)
+    )
+    bad = (
+        ~np.isfinite(t0)
+        & np.isfinite(ma)
+        & np.isfinite(kv)
+        & (ma > 0)
+        & (kv > 0)
+        & spec_ok
+    )
+    if not np.any(bad):
+        return t0
+    import warnings
+
+    from tubetrack.errors import TubetrackWarning
+
+    warnings.warn(
+        f"{int(np.sum(bad))} (mA, kV) point(s) lie above the filament spec's space-charge limit "
+        "P V^1.5; their baseline temperature is assumed at mid-transition. Fit the tube's "
+        "perveance with fit_baseline / fit_baseline_groups to avoid this.",
+        TubetrackWarning,
+        stacklevel=3,
+    )
+    area = spec.emitting_area_m2
+    j = 1.5 * np.asarray(ma, dtype=float) * 1e-3 / area
+    t_fb = _asarray(
+        richardson_dushman_temperature_k(
+            j, spec.work_function_ev, spec.richardson_a_m2_k2
+        )
+    )
+    return np.where(bad, t_fb, t0)
+
+
 def _solve_ratio(spec: FilamentSpec, q: Any, ma: Any, kv: Any) -> tuple[Any, Any]:
     """Solve q = I_f(r)/I_f(1) for r (vectorised, fast path of the full forward model).
 
@@ -114,6 +158,7 @@ def _solve_ratio(spec: FilamentSpec, q: Any, ma: Any, kv: Any) -> tuple[Any, Any
     Fixed-slope Newton in ln r (slope from a central difference at r = 1), 6 steps.
     """
     t0 = _asarray(filament_temperature_for_tube_current_k(spec, ma, kv, 1.0))
+    t0 = _fallback_temperature(spec, t0, ma, kv)
     a = spec.emitting_area_diameter_exponent
     b = spec.work_function_ev / BOLTZMANN_EV_K
     # ln h(T) near T0 as a quadratic from three grid lookups (h is smooth; |T - T0| < 50 K for
