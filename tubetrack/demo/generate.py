@@ -45,7 +45,7 @@ DEFAULT_YEARS = 3.2
 #: Demo time-lapse: multiplies every filament's wear rate so that filaments burn through within
 #: the few years the demo spans at its (thinned) logged workload. Real filaments at this logged
 #: workload would last longer; the physics of the drift is unchanged, only faster.
-DEFAULT_WEAR_ACCELERATION = 90.0
+DEFAULT_WEAR_ACCELERATION = 100.0
 
 #: Spread of the burn-through threshold around the physics default (relative SD) [1].
 THRESHOLD_SD = 0.10
@@ -53,12 +53,12 @@ THRESHOLD_SD = 0.10
 HOT_SPOT_SD = 0.08
 #: Competing failure modes the filament signal cannot foresee: Weibull in days of tube age.
 BEARING_ETA_DAYS, BEARING_BETA = 9 * 365.25, 2.5
-ARCING_ETA_DAYS, ARCING_BETA = 10 * 365.25, 1.2
+ARCING_ETA_DAYS, ARCING_BETA = 8 * 365.25, 1.2
 MS_PER_DAY = 86_400_000
 BASE_ARC_RATE = 2e-4  # arcs per exposure of a healthy tube [1] (# common practice order)
 
 #: Mean logged exposures per system and working day by modality [1/day].
-MEAN_PER_DAY = {"radiographic": 12.0, "mobile": 6.0, "fluoroscopy": 8.0}
+MEAN_PER_DAY = {"radiographic": 11.0, "mobile": 5.5, "fluoroscopy": 7.0}
 
 EVENT_CODES = {
     # category: (raw_code, raw_text)
@@ -204,7 +204,23 @@ def _make_downtime(
             "note": [notes[c] for c in cause],
         }
     )
-    frame = pd.concat([pm, un], ignore_index=True)
+    # one system per clock change (Europe/Berlin) is down over that weekend: the record spans
+    # the DST change (local durations differ from UTC ones by an hour)
+    change = np.flatnonzero(np.diff(offset_s) != 0) + 1  # first day with the new offset at noon
+    dst_sys = rng.integers(0, n_sys, len(change))
+    dst_start = start_ms + (change - 1) * MS_PER_DAY + 14 * 3_600_000
+    dst = pd.DataFrame(
+        {
+            "sys": dst_sys,
+            "start_ms": dst_start,
+            "end_ms": dst_start + 40 * 3_600_000 + rng.integers(0, 4 * 3_600_000, len(change)),
+            "cause": "generator",
+            "planned": False,
+            "severity": "hard_down",
+            "note": "generator fault over the weekend; spare part delivered Monday",
+        }
+    )
+    frame = pd.concat([dst, pm, un], ignore_index=True)
     return _drop_overlaps(frame)
 
 
@@ -570,7 +586,7 @@ def _simulate_tubes(
             other = min(
                 ("bearing", t_bearing), ("arcing", t_arcing), ("upgrade", t_upgrade), key=lambda x: x[1]
             )
-            other_ms = install_ms + other[1] * MS_PER_DAY
+            other_ms = float(np.floor((install_ms + other[1] * MS_PER_DAY) / 1000.0) * 1000.0)
             # wear over this tube's exposures
             sl = slice(i0, len(ts))
             p_t, hot_t, ts_t = prog[sl], hot[sl], ts[sl]
@@ -585,7 +601,8 @@ def _simulate_tubes(
                 cross[f] = int(over[0]) if len(over) else len(ts_t)
             fil_focal = min(cross, key=lambda f: cross[f])
             fil_idx = cross[fil_focal]
-            fil_ms = float(ts_t[fil_idx] + 500) if fil_idx < len(ts_t) else np.inf
+            # burns through during that exposure; times in the inventory are whole seconds
+            fil_ms = float((ts_t[fil_idx] // 1000 + 1) * 1000) if fil_idx < len(ts_t) else np.inf
             if fil_ms <= other_ms:
                 cause, fail_ms, n_use = "filament", fil_ms, fil_idx + 1
             else:
