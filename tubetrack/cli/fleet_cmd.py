@@ -137,6 +137,16 @@ def survival_cmd(
                      "numbers at risk), incidence (cumulative incidence by cause) or curve "
                      "(Weibull S(t) with bounds)."),
     ] = SurvivalView.summary,
+    age: Annotated[
+        float | None,
+        typer.Option("--age", help="Age of a tube on the chosen clock: adds its mean residual "
+                     "life and P(failure within --horizon-days) per group [clock unit].",
+                     show_default=False),
+    ] = None,
+    horizon_days: Annotated[
+        float, typer.Option("--horizon-days", help="Horizon for --age on the chosen clock "
+                            "[clock unit; days on the calendar clock].")
+    ] = 90.0,
     quiet: QuietOption = False,
     no_store: NoStoreOption = False,
 ) -> None:
@@ -164,6 +174,17 @@ def survival_cmd(
         _warn_notes([str(w.message) for w in caught], quiet)
         summary = res.summary.copy()
         summary.insert(0, "as_of", as_of_ts)
+        if age is not None:
+            fits = [res.fits.get(g) for g in summary["group"]]
+            summary["age"] = age
+            summary["horizon"] = horizon_days
+            summary["p_fail_within_horizon"] = [
+                float(f.conditional_failure_probability(age, horizon_days)) if f else np.nan
+                for f in fits
+            ]
+            summary["mean_residual_life"] = [
+                float(f.mean_residual_life(age)) if f else np.nan for f in fits
+            ]
         km = res.km.copy()
         km.insert(0, "group_by", by.value if by else "fleet")
         km["clock"] = clock.value
@@ -214,7 +235,8 @@ def survival_cmd(
         fmt,
         title=f"Tube survival ({clock.value}) as of {as_of_ts:%Y-%m-%d}",
         columns=["group", "n", "failures", "eta", "eta_lower", "eta_upper", "beta",
-                 "beta_lower", "beta_upper", "b10_life", "median_life", "km_median", "message"]
+                 "beta_lower", "beta_upper", "b10_life", "median_life", "km_median",
+                 "p_fail_within_horizon", "mean_residual_life", "message"]
         if show is SurvivalView.summary else None,
     )
     n_fail = int(tab["event"].sum())
@@ -327,6 +349,8 @@ def forecast_cmd(
     elif show == "budget" and budget is not None:
         emit(budget.summary, fmt, title="Expected tube spend")
     else:
+        if fmt is OutputFormat.table:
+            summary = summary.assign(month=summary["month"].dt.strftime("%Y-%m"))
         emit(summary, fmt, title=f"Expected tube replacements from {as_of_ts:%Y-%m-%d}"
              + (" (with renewals)" if renewal else ""),
              columns=["group", "month", "month_index", "expected_replacements", "lower_80",
@@ -389,7 +413,8 @@ def spares_cmd(
     finally:
         con.close()
     emit(out, fmt, title=f"Spare tubes for {100 * service_level:g} % service level over "
-         f"{horizon_days:g} d")
+         f"{horizon_days:g} d", columns=["group", "tubes_in_service", "expected_replacements",
+                                          "lower_95", "upper_95", "spares_needed", "p_enough"])
 
 
 @fleet_app.command("visits", help=(
