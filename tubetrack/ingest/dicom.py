@@ -717,11 +717,13 @@ def _resolve_devices(con: duckdb.DuckDBPyConnection, rows: pd.DataFrame) -> pd.S
             )
         if sys_id is None:
             sys_id = _placeholder_id(serial, station)
-            modality = rows.loc[
-                (rows["device_serial"].fillna("\0") == (serial or "\0"))
-                & (rows["station_name"].fillna("\0") == (station or "\0")),
-                "modality",
-            ].dropna()
+            same_serial = (
+                rows["device_serial"].isna() if serial is None else rows["device_serial"] == serial
+            )
+            same_station = (
+                rows["station_name"].isna() if station is None else rows["station_name"] == station
+            )
+            modality = rows.loc[same_serial & same_station, "modality"].dropna()
             con.execute(
                 "INSERT INTO systems (system_id, site, modality, model_label, source_file) "
                 "SELECT ?, NULL, ?, ?, 'dicom' WHERE NOT EXISTS (SELECT 1 FROM systems WHERE system_id = ?)",

@@ -565,7 +565,11 @@ def _timestamp(
         expect = "ISO 8601 (YYYY-MM-DDTHH:MM:SS[.fff][Z])"
     if tz == "UTC" or has_offset:
         if parsed is None:
-            parsed = f"timezone('UTC', TRY_CAST({m} AS TIMESTAMPTZ))"
+            # fast path without a UTC offset ("Z" or none); an explicit offset goes through ICU
+            parsed = (
+                f"(CASE WHEN length({m}) > 10 AND regexp_matches({m}, '[+-][0-9]{{2}}(:?[0-9]{{2}})?$') "
+                f"THEN timezone('UTC', TRY_CAST({m} AS TIMESTAMPTZ)) ELSE TRY_CAST({m} AS TIMESTAMP) END)"
+            )
         plan.selects_b.append(f"{parsed} AS {v}")
         local_err = ""
     else:
@@ -955,11 +959,24 @@ def _ingest_in_txn(
     if kind.name == "downtime":
         derived["severity"] = "COALESCE(severity, 'hard_down')"
     sel = ", ".join(f"{derived[c]} AS {qi(c)}" for c in cols)
+    # rank within the file only among keys that repeat (a hash aggregate finds them; the
+    # common case of no repeats then needs no sort)
     con.execute(
-        f"CREATE OR REPLACE TEMP TABLE _tt_good AS SELECT {line} AS _line, {sel}, "
-        f"row_number() OVER (PARTITION BY {key_cols} ORDER BY s._rec) AS _rank "
-        f"FROM {_STAGE} s {join} WHERE NOT s._bad"
+        f"CREATE OR REPLACE TEMP TABLE _tt_good AS SELECT {line} AS _line, s._rec, {sel}, "
+        f"1 AS _rank FROM {_STAGE} s {join} WHERE NOT s._bad"
     )
+    has_rep = con.execute(
+        f"SELECT count(*) FROM (SELECT 1 FROM _tt_good GROUP BY ALL_KEYS HAVING count(*) > 1)".replace(
+            "ALL_KEYS", key_cols
+        )
+    ).fetchone()[0]
+    if has_rep:
+        con.execute(
+            f"UPDATE _tt_good SET _rank = r.rk FROM (SELECT _rec, row_number() OVER "
+            f"(PARTITION BY {key_cols} ORDER BY _rec) AS rk FROM _tt_good WHERE ({key_cols}) IN "
+            f"(SELECT ({key_cols}) FROM _tt_good GROUP BY {key_cols} HAVING count(*) > 1)) r "
+            f"WHERE _tt_good._rec = r._rec"
+        )
     n_good, n_dup_in = con.execute("SELECT count(*), count(*) FILTER (WHERE _rank > 1) FROM _tt_good").fetchone()
     target = kind.table
     match = " AND ".join(f"e.{qi(k)} IS NOT DISTINCT FROM g.{qi(k)}" for k in key)
@@ -1010,7 +1027,7 @@ def _ingest_in_txn(
         if kind.name == "exposures":
             extra_cols += ", source_kind"
             extra_vals += ", 'log'"
-        order = f" ORDER BY {qi(kind.time_column)}, _line" if kind.time_column else ""
+        order = f" ORDER BY {qi(kind.time_column)}" if kind.time_column else ""
         conflict = ""
         if kind.upsert:
             sets = ", ".join(

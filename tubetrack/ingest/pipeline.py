@@ -214,6 +214,7 @@ def ingest_paths(
         con.execute("SET TimeZone = 'UTC'")
     except Exception:  # pragma: no cover - ICU missing
         pass
+    con.execute("SET enable_progress_bar = false")  # our own bar, on stderr, when wanted
     jobs = plan_jobs(paths, prof)
     _call(progress, "start", len(jobs), sum(_size(j.path) for j in jobs))
     reports: list[FileReport] = []
