@@ -23,12 +23,16 @@ TRUE_BETA = 2.5
 def simulate_fleet(seed: int = 7, n_systems: int = 40, exposures_per_day: float = 2.0):
     """Systems, tubes (Weibull lives, replaced at failure since 2016), exposures, downtime."""
     rng = np.random.default_rng(seed)
-    gen = np.array(["single_phase", "three_phase_6p", "three_phase_12p", "high_frequency"])
+    gen = np.array(
+        ["single_phase", "three_phase_6p", "three_phase_12p", "high_frequency"]
+    )
     systems = pd.DataFrame(
         {
             "system_id": [f"SYS{i:03d}" for i in range(n_systems)],
             "site": np.where(np.arange(n_systems) % 2 == 0, "north", "south"),
-            "modality": np.where(np.arange(n_systems) % 3 == 0, "fluoroscopy", "radiographic"),
+            "modality": np.where(
+                np.arange(n_systems) % 3 == 0, "fluoroscopy", "radiographic"
+            ),
             "generator_type": gen[np.arange(n_systems) % 4],
             "criticality_weight": np.where(np.arange(n_systems) % 5 == 0, 2.0, 1.0),
             "uptime_target_pct": 97.0,
@@ -52,7 +56,9 @@ def simulate_fleet(seed: int = 7, n_systems: int = 40, exposures_per_day: float 
                     "installed_at_utc": t,
                     "removed_at_utc": end if failed else pd.NaT,
                     "removal_reason": (
-                        ("filament" if rng.random() < 0.6 else "arcing") if failed else None
+                        ("filament" if rng.random() < 0.6 else "arcing")
+                        if failed
+                        else None
                     ),
                     "price": 40000.0 if k % 2 == 0 else 55000.0,
                     "price_currency": "EUR",
@@ -67,7 +73,9 @@ def simulate_fleet(seed: int = 7, n_systems: int = 40, exposures_per_day: float 
     exposures = pd.DataFrame(
         {
             "timestamp_utc": ts.round("s"),
-            "system_id": systems["system_id"].to_numpy()[rng.integers(0, n_systems, n_exp)],
+            "system_id": systems["system_id"].to_numpy()[
+                rng.integers(0, n_systems, n_exp)
+            ],
             "tube_id": None,
             "focal_spot": np.where(rng.random(n_exp) < 0.5, "small", "large"),
             "tube_voltage_kv": rng.choice([60.0, 70.0, 81.0, 90.0], n_exp),
@@ -76,8 +84,12 @@ def simulate_fleet(seed: int = 7, n_systems: int = 40, exposures_per_day: float 
             "prep_time_s": 1.0,
         }
     ).drop_duplicates(["system_id", "timestamp_utc"])
-    exposures["exposure_mas"] = exposures["tube_current_ma"] * exposures["exposure_time_s"]
-    failed = tubes[tubes["removed_at_utc"].notna() & (tubes["removed_at_utc"] > LOG_START)]
+    exposures["exposure_mas"] = (
+        exposures["tube_current_ma"] * exposures["exposure_time_s"]
+    )
+    failed = tubes[
+        tubes["removed_at_utc"].notna() & (tubes["removed_at_utc"] > LOG_START)
+    ]
     down = pd.DataFrame(
         {
             "system_id": failed["system_id"].to_numpy(),
@@ -93,8 +105,12 @@ def simulate_fleet(seed: int = 7, n_systems: int = 40, exposures_per_day: float 
 
 
 def load_into(con, systems, tubes, exposures, down) -> None:
-    for name, frame in (("systems", systems), ("tubes", tubes), ("exposures", exposures),
-                        ("downtime", down)):
+    for name, frame in (
+        ("systems", systems),
+        ("tubes", tubes),
+        ("exposures", exposures),
+        ("downtime", down),
+    ):
         con.register("_f", frame)
         cols = ", ".join(frame.columns)
         con.execute(f"INSERT INTO {name} ({cols}) SELECT {cols} FROM _f")

@@ -40,17 +40,24 @@ def test_survival_json_and_stored_tables(db):
     assert r.exit_code == 0, r.output
     rows = json.loads(r.stdout)
     assert {row["group"] for row in rows} == {"TX-A", "TX-B"}
-    assert all(row["eta"] > 0 and row["beta_lower"] < row["beta"] < row["beta_upper"]
-               for row in rows)
+    assert all(
+        row["eta"] > 0 and row["beta_lower"] < row["beta"] < row["beta_upper"]
+        for row in rows
+    )
     con = duckdb.connect(str(db), read_only=True)
     km = con.execute("SELECT * FROM result_fleet_km").df()
     assert {"time", "at_risk", "survival", "lower", "upper", "group"} <= set(km.columns)
-    assert con.execute("SELECT count(*) FROM result_fleet_survival_curve").fetchall()[0][0] > 0
+    assert (
+        con.execute("SELECT count(*) FROM result_fleet_survival_curve").fetchall()[0][0]
+        > 0
+    )
     con.close()
 
 
 def test_survival_km_csv_has_header(db):
-    r = run("survival", "--db", str(db), "--format", "csv", "--show", "km", "--no-store")
+    r = run(
+        "survival", "--db", str(db), "--format", "csv", "--show", "km", "--no-store"
+    )
     assert r.exit_code == 0, r.output
     assert r.stdout.splitlines()[0].startswith("group_by,group,time,at_risk")
 
@@ -62,14 +69,22 @@ def test_forecast_falls_back_without_health_and_uses_it_when_present(db):
     months = json.loads(r.stdout)
     assert len(months) == 12
     base_total = sum(m["expected_replacements"] for m in months)
-    assert all(m["lower_95"] <= m["expected_replacements"] <= m["upper_95"] + 1 for m in months)
+    assert all(
+        m["lower_95"] <= m["expected_replacements"] <= m["upper_95"] + 1 for m in months
+    )
     con = duckdb.connect(str(db))
     tubes = con.execute(
         "SELECT DISTINCT tube_id FROM result_fleet_forecast_tubes ORDER BY tube_id"
     ).df()
     # a health forecast that says every tube's small filament ends within 30 days
-    rul = pd.DataFrame({"tube_id": tubes["tube_id"], "focal_spot": "small",
-                        "horizon_days": 30, "p_end_of_life": 0.99})
+    rul = pd.DataFrame(
+        {
+            "tube_id": tubes["tube_id"],
+            "focal_spot": "small",
+            "horizon_days": 30,
+            "p_end_of_life": 0.99,
+        }
+    )
     con.register("r", rul)
     con.execute("CREATE TABLE result_health_rul_cdf AS SELECT * FROM r")
     con.close()
@@ -82,14 +97,28 @@ def test_forecast_falls_back_without_health_and_uses_it_when_present(db):
 
 def test_forecast_budget_and_groups(db, tmp_path):
     prices = tmp_path / "prices.csv"
-    prices.write_text("model_label,price,currency\nTX-A,41000,EUR\n")  # TX-B: inventory price
-    r = run("forecast", "--db", str(db), "--price-list", str(prices), "--show", "budget",
-            "--format", "json", "--renewal")
+    prices.write_text(
+        "model_label,price,currency\nTX-A,41000,EUR\n"
+    )  # TX-B: inventory price
+    r = run(
+        "forecast",
+        "--db",
+        str(db),
+        "--price-list",
+        str(prices),
+        "--show",
+        "budget",
+        "--format",
+        "json",
+        "--renewal",
+    )
     assert r.exit_code == 0, r.output
     rows = json.loads(r.stdout)
     assert {row["period_kind"] for row in rows} == {"month", "quarter"}
     assert all(row["currency"] == "EUR" for row in rows)
-    r = run("forecast", "--db", str(db), "--by", "site", "--format", "json", "--no-store")
+    r = run(
+        "forecast", "--db", str(db), "--by", "site", "--format", "json", "--no-store"
+    )
     assert r.exit_code == 0, r.output
     assert {row["group"] for row in json.loads(r.stdout)} == {"north", "south"}
 
@@ -110,7 +139,16 @@ def test_spares_visits_uptime(db):
     up = json.loads(r.stdout)
     assert all(0 <= row["availability_pct"] <= 100 for row in up)
     assert sum(row["tube_failures"] for row in up) > 0
-    r = run("uptime", "--db", str(db), "--format", "csv", "--period", "quarter", "--no-store")
+    r = run(
+        "uptime",
+        "--db",
+        str(db),
+        "--format",
+        "csv",
+        "--period",
+        "quarter",
+        "--no-store",
+    )
     assert r.exit_code == 0, r.output
     assert "availability_pct" in r.stdout.splitlines()[0]
 

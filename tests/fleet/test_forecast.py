@@ -37,7 +37,9 @@ def test_poisson_binomial_equals_brute_force_enumeration():
 def test_poisson_binomial_equal_probabilities_is_binomial():
     # Reference: scipy.stats.binom
     pmf = poisson_binomial_pmf(np.full(40, 0.137))
-    np.testing.assert_allclose(pmf, stats.binom.pmf(np.arange(41), 40, 0.137), atol=1e-14)
+    np.testing.assert_allclose(
+        pmf, stats.binom.pmf(np.arange(41), 40, 0.137), atol=1e-14
+    )
 
 
 def test_poisson_binomial_against_seeded_simulation():
@@ -70,8 +72,12 @@ def test_quantiles_and_intervals():
 
 def test_renewal_function_weibull_beta_2():
     # Source: REFERENCES.md [C]: Weibull beta = 2, eta = 1: M(1) = 0.753691, M(2) = 1.894039.
-    t, m = renewal_function(lambda x: stats.weibull_min.cdf(x, 2.0, scale=1.0), 2.0, 2000)
-    assert m[1000] == pytest.approx(0.753691, abs=2e-6)  # 6 decimals printed; O(h^2) scheme
+    t, m = renewal_function(
+        lambda x: stats.weibull_min.cdf(x, 2.0, scale=1.0), 2.0, 2000
+    )
+    assert m[1000] == pytest.approx(
+        0.753691, abs=2e-6
+    )  # 6 decimals printed; O(h^2) scheme
     assert m[2000] == pytest.approx(1.894039, abs=2e-6)
 
 
@@ -90,14 +96,24 @@ def test_delayed_renewal_with_ordinary_first_life_is_ordinary_renewal():
 
 def test_month_edges_split_calendar_months():
     e = month_edges(datetime(2025, 3, 15, 12), 3)
-    assert [str(x) for x in e] == ["2025-03-15 12:00:00", "2025-04-01 00:00:00",
-                                   "2025-05-01 00:00:00", "2025-06-01 00:00:00"]
+    assert [str(x) for x in e] == [
+        "2025-03-15 12:00:00",
+        "2025-04-01 00:00:00",
+        "2025-05-01 00:00:00",
+        "2025-06-01 00:00:00",
+    ]
     e = month_edges(datetime(2025, 1, 1), 2)
-    assert [str(x) for x in e] == ["2025-01-01 00:00:00", "2025-02-01 00:00:00",
-                                   "2025-03-01 00:00:00"]
+    assert [str(x) for x in e] == [
+        "2025-01-01 00:00:00",
+        "2025-02-01 00:00:00",
+        "2025-03-01 00:00:00",
+    ]
     e = month_edges(datetime(2025, 1, 20), horizon_days=30)
-    assert [str(x) for x in e] == ["2025-01-20 00:00:00", "2025-02-01 00:00:00",
-                                   "2025-02-19 00:00:00"]
+    assert [str(x) for x in e] == [
+        "2025-01-20 00:00:00",
+        "2025-02-01 00:00:00",
+        "2025-02-19 00:00:00",
+    ]
 
 
 def _life(ages, ids=None):
@@ -129,19 +145,22 @@ def test_forecast_without_health_uses_conditional_weibull():
     per = fc.per_tube.set_index("tube_id")
     horizon = (pd.Timestamp("2026-01-01") - pd.Timestamp("2025-01-01")).days
     for tid, age in (("T0", 100.0), ("T1", 400.0)):
-        expected = 1 - math.exp(-(((age + horizon) / fit.eta) ** fit.beta)
-                                + (age / fit.eta) ** fit.beta)
+        expected = 1 - math.exp(
+            -(((age + horizon) / fit.eta) ** fit.beta) + (age / fit.eta) ** fit.beta
+        )
         assert per.loc[tid, "p_replace_horizon"] == pytest.approx(expected, rel=1e-9)
     assert fc.summary["expected_replacements"].sum() == pytest.approx(
-        per["p_replace_horizon"].sum(), rel=1e-9)
+        per["p_replace_horizon"].sum(), rel=1e-9
+    )
     assert any("no health forecasts" in n for n in fc.notes)
     assert (fc.summary["lower_95"] <= fc.summary["upper_95"]).all()
 
 
 def test_forecast_combines_health_filament_and_fleet_other_causes():
     fit = _fit()
-    other = fit_weibull(np.array([300.0, 500, 800, 900, 1200, 1500]),
-                        np.array([1, 1, 0, 1, 0, 0], bool))
+    other = fit_weibull(
+        np.array([300.0, 500, 800, 900, 1200, 1500]), np.array([1, 1, 0, 1, 0, 0], bool)
+    )
     life = _life([200.0, 200.0])
     rul = pd.DataFrame(
         {
@@ -151,23 +170,37 @@ def test_forecast_combines_health_filament_and_fleet_other_causes():
             "p_end_of_life": [0.1, 0.2, 0.05, 0.3],
         }
     )
-    fc = replacement_forecast(life, fit, as_of=datetime(2025, 1, 1), horizon_days=60,
-                              other_fit=other, health_rul_cdf=rul)
+    fc = replacement_forecast(
+        life,
+        fit,
+        as_of=datetime(2025, 1, 1),
+        horizon_days=60,
+        other_fit=other,
+        health_rul_cdf=rul,
+    )
     per = fc.per_tube.set_index("tube_id")
     # rule: P = 1 - (1 - P_fil)(1 - P_other); P_fil = 1 - (1 - p_small)(1 - p_large)
     p_fil = 1 - (1 - 0.2) * (1 - 0.3)
     p_oth = other.conditional_failure_probability(200.0, 60.0)
-    assert per.loc["T0", "p_replace_horizon"] == pytest.approx(1 - (1 - p_fil) * (1 - p_oth),
-                                                               rel=1e-9)
+    assert per.loc["T0", "p_replace_horizon"] == pytest.approx(
+        1 - (1 - p_fil) * (1 - p_oth), rel=1e-9
+    )
     assert per.loc["T0", "source"] == "health+fleet"
     assert per.loc["T1", "source"] == "fleet"
     assert per.loc["T1", "p_replace_horizon"] == pytest.approx(
-        fit.conditional_failure_probability(200.0, 60.0), rel=1e-9)
+        fit.conditional_failure_probability(200.0, 60.0), rel=1e-9
+    )
 
 
 def test_health_cdf_interpolates_linearly_and_holds_flat():
-    rul = pd.DataFrame({"tube_id": ["A", "A"], "focal_spot": ["small", "small"],
-                        "horizon_days": [30, 60], "p_end_of_life": [0.3, 0.6]})
+    rul = pd.DataFrame(
+        {
+            "tube_id": ["A", "A"],
+            "focal_spot": ["small", "small"],
+            "horizon_days": [30, 60],
+            "p_end_of_life": [0.3, 0.6],
+        }
+    )
     out = health_filament_cdf(rul, ["A", "B"], np.array([0.0, 15.0, 45.0, 90.0]))
     np.testing.assert_allclose(out[0], [0.0, 0.15, 0.45, 0.6])
     assert np.isnan(out[1]).all()
@@ -177,9 +210,13 @@ def test_renewal_option_adds_replacements_of_replacements():
     fit = fit_weibull(np.array([20.0, 30, 35, 40, 50, 60, 70]), np.ones(7, bool))
     life = _life([45.0] * 5)
     base = replacement_forecast(life, fit, as_of=datetime(2025, 1, 1), months=12)
-    ren = replacement_forecast(life, fit, as_of=datetime(2025, 1, 1), months=12, renewal=True)
-    assert ren.summary["expected_replacements"].sum() > base.summary[
-        "expected_replacements"].sum() + 1.0
+    ren = replacement_forecast(
+        life, fit, as_of=datetime(2025, 1, 1), months=12, renewal=True
+    )
+    assert (
+        ren.summary["expected_replacements"].sum()
+        > base.summary["expected_replacements"].sum() + 1.0
+    )
     # nearly every old tube fails once; with a ~45 d mean life the position renews many times
     assert base.summary["expected_replacements"].sum() == pytest.approx(5.0, abs=1e-6)
 

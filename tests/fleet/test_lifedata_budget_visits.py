@@ -47,7 +47,9 @@ def test_workload_sql_heat_units_and_hot_time_by_hand():
     con = _tiny_store()
     w = workload_by_tube(con).set_index("tube_id")
     f6 = WAVEFORM_FACTORS["three_phase_6p"]
-    assert f6 == 1.35  # Bushong, Radiologic Science for Technologists: three-phase six-pulse
+    assert (
+        f6 == 1.35
+    )  # Bushong, Radiologic Science for Technologists: three-phase six-pulse
     # T1: two exposures before its removal: 80 kV x 20 mAs and 100 kV x 20 mAs
     assert w.loc["T1", "exposures"] == 2
     assert w.loc["T1", "mas"] == pytest.approx(40.0)
@@ -69,10 +71,13 @@ def test_life_data_censoring_truncation_and_causes():
     assert f.loc["T1", "status"] == "failed" and f.loc["T1", "cause"] == "filament"
     assert bool(f.loc["T1", "left_truncated"])
     # logs of S1 begin 2024-01-01 10:00: entry = that minus 2020-01-01
-    expected_entry = (pd.Timestamp("2024-01-01 10:00") - pd.Timestamp("2020-01-01")).total_seconds() / 86400
+    expected_entry = (
+        pd.Timestamp("2024-01-01 10:00") - pd.Timestamp("2020-01-01")
+    ).total_seconds() / 86400
     assert f.loc["T1", "entry_days"] == pytest.approx(expected_entry)
     assert f.loc["T1", "exit_days"] == pytest.approx(
-        (pd.Timestamp("2024-01-11") - pd.Timestamp("2020-01-01")).days)
+        (pd.Timestamp("2024-01-11") - pd.Timestamp("2020-01-01")).days
+    )
     assert f.loc["T2", "status"] == "in_service" and not f.loc["T2", "failed"]
     # T3 removed for an upgrade after the as-of date: still in service at as_of
     assert f.loc["T3", "status"] == "in_service"
@@ -85,10 +90,15 @@ def test_life_data_censoring_truncation_and_causes():
 
 
 def test_removal_before_install_names_the_tube():
-    tubes = pd.DataFrame({"tube_id": ["OK", "BAD"], "system_id": ["S", "S"],
-                          "installed_at_utc": ["2020-01-01", "2021-05-01"],
-                          "removed_at_utc": ["2020-06-01", "2021-04-01"],
-                          "removal_reason": ["filament", "anode"]})
+    tubes = pd.DataFrame(
+        {
+            "tube_id": ["OK", "BAD"],
+            "system_id": ["S", "S"],
+            "installed_at_utc": ["2020-01-01", "2021-05-01"],
+            "removed_at_utc": ["2020-06-01", "2021-04-01"],
+            "removal_reason": ["filament", "anode"],
+        }
+    )
     with pytest.raises(InputError, match="tube BAD: removed_at_utc 2021-04-01"):
         build_life_data(tubes, as_of=datetime(2022, 1, 1))
 
@@ -112,8 +122,10 @@ def test_price_list_csv_and_toml(tmp_path):
     p = load_price_list(csv)
     assert list(p["price"]) == [41000.0, 52000.5]
     toml = tmp_path / "prices.toml"
-    toml.write_text('currency = "EUR"\n[prices]\n"TX-A" = 41000\n"TX-B" = { price = 52000, '
-                    'currency = "CHF" }\n')
+    toml.write_text(
+        'currency = "EUR"\n[prices]\n"TX-A" = 41000\n"TX-B" = { price = 52000, '
+        'currency = "CHF" }\n'
+    )
     p = load_price_list(toml).set_index("model_label")
     assert p.loc["TX-A", "currency"] == "EUR" and p.loc["TX-B", "currency"] == "CHF"
     bad = tmp_path / "bad.csv"
@@ -124,33 +136,55 @@ def test_price_list_csv_and_toml(tmp_path):
 
 def _forecast(n=30, seed=1):
     rng = np.random.default_rng(seed)
-    fit = fit_weibull(np.array([300.0, 420, 500, 610, 700, 800, 950, 1000, 1000, 1000]),
-                      np.array([1, 1, 1, 1, 1, 1, 1, 0, 0, 0], bool))
-    life = pd.DataFrame({
-        "tube_id": [f"T{i}" for i in range(n)], "system_id": [f"S{i % 10}" for i in range(n)],
-        "site": np.where(np.arange(n) % 2 == 0, "north", "south"),
-        "model_label": np.where(np.arange(n) % 3 == 0, "A", "B"), "status": "in_service",
-        "exit_days": rng.uniform(10, 900, n), "price": 1000.0, "price_currency": "EUR"})
+    fit = fit_weibull(
+        np.array([300.0, 420, 500, 610, 700, 800, 950, 1000, 1000, 1000]),
+        np.array([1, 1, 1, 1, 1, 1, 1, 0, 0, 0], bool),
+    )
+    life = pd.DataFrame(
+        {
+            "tube_id": [f"T{i}" for i in range(n)],
+            "system_id": [f"S{i % 10}" for i in range(n)],
+            "site": np.where(np.arange(n) % 2 == 0, "north", "south"),
+            "model_label": np.where(np.arange(n) % 3 == 0, "A", "B"),
+            "status": "in_service",
+            "exit_days": rng.uniform(10, 900, n),
+            "price": 1000.0,
+            "price_currency": "EUR",
+        }
+    )
     return replacement_forecast(life, fit, as_of=datetime(2025, 1, 1), months=12), life
 
 
 def test_spend_expectation_exact_and_intervals_bracket_it():
     fc, _ = _forecast()
-    prices = pd.DataFrame({"model_label": ["A", "B"], "price": [10000.0, 25000.0],
-                           "currency": ["EUR", "EUR"]})
+    prices = pd.DataFrame(
+        {
+            "model_label": ["A", "B"],
+            "price": [10000.0, 25000.0],
+            "currency": ["EUR", "EUR"],
+        }
+    )
     b = spend_forecast(fc, prices, n_sims=20000, seed=3)
     q = b.summary[b.summary["period_kind"] == "quarter"]
     t = fc.tubes.assign(c=np.where(fc.tubes["model_label"] == "A", 10000.0, 25000.0))
-    assert q["expected_spend"].sum() == pytest.approx((t["p_replace"] * t["c"]).sum(), rel=1e-9)
+    assert q["expected_spend"].sum() == pytest.approx(
+        (t["p_replace"] * t["c"]).sum(), rel=1e-9
+    )
     m = b.summary[b.summary["period_kind"] == "month"]
-    assert m["expected_spend"].sum() == pytest.approx(q["expected_spend"].sum(), rel=1e-9)
+    assert m["expected_spend"].sum() == pytest.approx(
+        q["expected_spend"].sum(), rel=1e-9
+    )
     assert (q["spend_lower_95"] <= q["expected_spend"]).all()
     assert (q["spend_upper_95"] >= q["expected_spend"]).all()
     # one price for everyone: spend = price x Poisson-binomial count (exact quantiles)
     b1 = spend_forecast(fc, None, n_sims=40000, seed=4)  # tube's own price 1000 EUR
     q1 = b1.summary[b1.summary["period_kind"] == "quarter"].iloc[0]
-    tq = fc.tubes[pd.PeriodIndex(fc.tubes["month"], freq="Q").astype(str) == q1["period"]]
-    pmf = poisson_binomial_pmf(tq.groupby("tube_id")["p_replace"].sum().clip(0, 1).to_numpy())
+    tq = fc.tubes[
+        pd.PeriodIndex(fc.tubes["month"], freq="Q").astype(str) == q1["period"]
+    ]
+    pmf = poisson_binomial_pmf(
+        tq.groupby("tube_id")["p_replace"].sum().clip(0, 1).to_numpy()
+    )
     from tubetrack.fleet.forecast import pmf_quantile
 
     assert q1["spend_upper_95"] == 1000 * pmf_quantile(pmf, 0.975)
@@ -171,17 +205,28 @@ def test_spares_is_smallest_stock_meeting_the_service_level():
 
 
 def test_visit_order_ranks_by_risk_times_impact():
-    risk = pd.DataFrame({
-        "tube_id": ["a1", "b1", "c1", "c2"], "system_id": ["A", "B", "C", "C"],
-        "age_days": [500.0, 900.0, 100.0, 50.0], "p_event": [0.2, 0.3, 0.1, 0.1],
-        "p_filament": [np.nan, 0.25, np.nan, np.nan], "source": ["fleet", "health+fleet",
-                                                                 "fleet", "fleet"]})
-    systems = pd.DataFrame({"system_id": ["A", "B", "C"], "site": ["x", "y", "x"],
-                            "criticality_weight": [3.0, 1.0, 1.0],
-                            "uptime_target_pct": [np.nan, 99.0, np.nan],
-                            "scheduled_hours_per_week": [40.0, 40.0, 40.0]})
+    risk = pd.DataFrame(
+        {
+            "tube_id": ["a1", "b1", "c1", "c2"],
+            "system_id": ["A", "B", "C", "C"],
+            "age_days": [500.0, 900.0, 100.0, 50.0],
+            "p_event": [0.2, 0.3, 0.1, 0.1],
+            "p_filament": [np.nan, 0.25, np.nan, np.nan],
+            "source": ["fleet", "health+fleet", "fleet", "fleet"],
+        }
+    )
+    systems = pd.DataFrame(
+        {
+            "system_id": ["A", "B", "C"],
+            "site": ["x", "y", "x"],
+            "criticality_weight": [3.0, 1.0, 1.0],
+            "uptime_target_pct": [np.nan, 99.0, np.nan],
+            "scheduled_hours_per_week": [40.0, 40.0, 40.0],
+        }
+    )
     v = visit_order(risk, systems, horizon_days=30, tube_outage_h=24).summary.set_index(
-        "system_id")
+        "system_id"
+    )
     # hand computation: A 0.2 x 3 = 0.6; B: allowance 0.01 x 40 x 30/7 = 1.714 h, outage
     # 24 x 40/168 = 5.714 h -> share 3.333, impact 4.333, score 1.3; C: 1 - 0.9^2 = 0.19
     assert v.loc["A", "score"] == pytest.approx(0.6)

@@ -29,13 +29,33 @@ NIST_E = np.array([True] * 10 + [False] * 10)
 # counts per 100-h bin as transcribed in the PyMC example "Reliability Statistics and Predictive
 # Calibration" (2023).
 BEARING_FAIL = np.array([230, 334, 423, 990, 1009, 1510], dtype=float)
-BEARING_CENSORED = {50: 288, 150: 148, 250: 124, 350: 111, 450: 106, 550: 99, 650: 110,
-                    750: 114, 850: 119, 950: 127, 1050: 123, 1150: 93, 1250: 47, 1350: 41,
-                    1450: 27, 1550: 11, 1650: 6, 1850: 1, 2050: 2}
+BEARING_CENSORED = {
+    50: 288,
+    150: 148,
+    250: 124,
+    350: 111,
+    450: 106,
+    550: 99,
+    650: 110,
+    750: 114,
+    850: 119,
+    950: 127,
+    1050: 123,
+    1150: 93,
+    1250: 47,
+    1350: 41,
+    1450: 27,
+    1550: 11,
+    1650: 6,
+    1850: 1,
+    2050: 2,
+}
 
 
 def bearing_cage():
-    cens = np.repeat(list(BEARING_CENSORED), list(BEARING_CENSORED.values())).astype(float)
+    cens = np.repeat(list(BEARING_CENSORED), list(BEARING_CENSORED.values())).astype(
+        float
+    )
     t = np.concatenate([BEARING_FAIL, cens])
     e = np.concatenate([np.ones(6, bool), np.zeros(len(cens), bool)])
     return t, e, cens
@@ -49,7 +69,9 @@ def test_nist_8_4_1_3_weibull_mle():
     # 606.5280 carries their optimiser's last digit, so 1e-3 h on eta.
     assert fit.eta == pytest.approx(606.5280, abs=1e-3)
     assert fit.beta == pytest.approx(1.7208, abs=5e-5)  # printed to 4 decimals
-    assert fit.log_likelihood == pytest.approx(-75.135, abs=5e-4)  # printed to 3 decimals
+    assert fit.log_likelihood == pytest.approx(
+        -75.135, abs=5e-4
+    )  # printed to 3 decimals
     assert fit.aic == pytest.approx(154.27, abs=5e-3)
     assert fit.mean == pytest.approx(540.737, abs=5e-3)
 
@@ -64,7 +86,9 @@ def test_automotive_matches_reliability_docs_and_library():
 
     data = automotive()
     t = np.concatenate([data.failures, data.right_censored]).astype(float)
-    e = np.concatenate([np.ones(len(data.failures), bool), np.zeros(len(data.right_censored), bool)])
+    e = np.concatenate(
+        [np.ones(len(data.failures), bool), np.zeros(len(data.right_censored), bool)]
+    )
     fit = fit_weibull(t, e)
     assert fit.eta == pytest.approx(134651, rel=5e-6)  # printed to 6 significant digits
     assert fit.beta == pytest.approx(1.15443, abs=5e-6)
@@ -75,8 +99,12 @@ def test_automotive_matches_reliability_docs_and_library():
     assert blo == pytest.approx(0.698, abs=5e-4)
     assert bhi == pytest.approx(1.909, abs=5e-4)
     # The reference library itself (version recorded in the failure message).
-    ref = Fit_Weibull_2P(failures=list(data.failures), right_censored=list(data.right_censored),
-                         show_probability_plot=False, print_results=False)
+    ref = Fit_Weibull_2P(
+        failures=list(data.failures),
+        right_censored=list(data.right_censored),
+        show_probability_plot=False,
+        print_results=False,
+    )
     ver = reliability.__version__
     assert fit.eta == pytest.approx(ref.alpha, rel=1e-4), ver
     assert fit.beta == pytest.approx(ref.beta, rel=1e-4), ver
@@ -84,14 +112,16 @@ def test_automotive_matches_reliability_docs_and_library():
     assert fit.se_beta == pytest.approx(ref.beta_SE, rel=1e-3), ver
     assert fit.log_likelihood == pytest.approx(ref.loglik, abs=1e-3), ver
     # Bounds on S(t) (delta method on log cumulative hazard) and on B-lives (time bounds).
-    sf_lo, sf, sf_hi = ref.distribution.SF(CI_type="reliability", CI=0.95,
-                                           CI_x=[20000.0, 80000.0], show_plot=False)
+    sf_lo, sf, sf_hi = ref.distribution.SF(
+        CI_type="reliability", CI=0.95, CI_x=[20000.0, 80000.0], show_plot=False
+    )
     sb = fit.survival_bounds([20000.0, 80000.0])
     np.testing.assert_allclose(sb["survival"], sf, rtol=1e-4)
     np.testing.assert_allclose(sb["lower"], sf_lo, rtol=1e-4)
     np.testing.assert_allclose(sb["upper"], sf_hi, rtol=1e-4)
-    t_lo, t_p, t_hi = ref.distribution.SF(CI_type="time", CI=0.95, CI_y=[0.9, 0.5],
-                                          show_plot=False)
+    t_lo, t_p, t_hi = ref.distribution.SF(
+        CI_type="time", CI=0.95, CI_y=[0.9, 0.5], show_plot=False
+    )
     for k, p in enumerate((0.1, 0.5)):
         est, lo_p, hi_p = fit.b_life(p)
         assert est == pytest.approx(t_p[k], rel=1e-4)
@@ -184,7 +214,9 @@ def test_analytic_gradient_and_hessian_agree_with_finite_differences():
     f = lambda x: _weibull_terms(x, lt, ev.astype(float), le, has)[0]  # noqa: E731
     np.testing.assert_allclose(g, approx_fprime(th, f, 1e-7), rtol=1e-5, atol=1e-5)
     gf = lambda x: _weibull_terms(x, lt, ev.astype(float), le, has)[1]  # noqa: E731
-    num_h = np.column_stack([approx_fprime(th, lambda x, i=i: gf(x)[i], 1e-7) for i in (0, 1)])
+    num_h = np.column_stack(
+        [approx_fprime(th, lambda x, i=i: gf(x)[i], 1e-7) for i in (0, 1)]
+    )
     np.testing.assert_allclose(h, num_h, rtol=1e-4, atol=1e-4)
 
 
@@ -193,10 +225,14 @@ def test_conditional_probability_and_mean_residual_life():
 
     fit = fit_weibull(NIST_T, NIST_E)
     a, h = 300.0, 100.0
-    expected = 1 - math.exp(-((a + h) / fit.eta) ** fit.beta + (a / fit.eta) ** fit.beta)
-    assert fit.conditional_failure_probability(a, h) == pytest.approx(expected, rel=1e-12)
+    expected = 1 - math.exp(
+        -(((a + h) / fit.eta) ** fit.beta) + (a / fit.eta) ** fit.beta
+    )
+    assert fit.conditional_failure_probability(a, h) == pytest.approx(
+        expected, rel=1e-12
+    )
     # MRL by numerical integration of S(x)/S(a) (scipy.integrate.quad as the reference)
-    num = quad(lambda x: math.exp(-(x / fit.eta) ** fit.beta), a, np.inf)[0]
+    num = quad(lambda x: math.exp(-((x / fit.eta) ** fit.beta)), a, np.inf)[0]
     assert fit.mean_residual_life(a) == pytest.approx(num / fit.survival(a), rel=1e-7)
     assert fit.mean_residual_life(0.0) == pytest.approx(fit.mean, rel=1e-10)
 
@@ -205,9 +241,13 @@ def test_gehan_6mp_kaplan_meier_table():
     # Source: Gehan (1965) / Freireich 6-MP group; lifelines ships it as load_leukemia (Rx = 0);
     # S = 0.8571, 0.8067, 0.7529, 0.6902, 0.6275, 0.5378, 0.4482 at t = 6, 7, 10, 13, 16, 22,
     # 23; Greenwood SE 0.0764 at t = 6 and 0.1346 at t = 23 (Klein & Moeschberger 2003 ch. 4).
-    times = np.array([6, 6, 6, 6, 7, 9, 10, 10, 11, 13, 16, 17, 19, 20, 22, 23, 25, 32, 32, 34,
-                      35], dtype=float)
-    event = np.array([1, 1, 1, 0, 1, 0, 1, 0, 0, 1, 1, 0, 0, 0, 1, 1, 0, 0, 0, 0, 0], bool)
+    times = np.array(
+        [6, 6, 6, 6, 7, 9, 10, 10, 11, 13, 16, 17, 19, 20, 22, 23, 25, 32, 32, 34, 35],
+        dtype=float,
+    )
+    event = np.array(
+        [1, 1, 1, 0, 1, 0, 1, 0, 0, 1, 1, 0, 0, 0, 1, 1, 0, 0, 0, 0, 0], bool
+    )
     km = kaplan_meier(times, event)
     s = km.summary.set_index("time")
     np.testing.assert_allclose(
@@ -223,16 +263,22 @@ def test_gehan_6mp_kaplan_meier_table():
     d = datasets.load_leukemia()
     d = d[d["Rx"] == 0]
     km2 = kaplan_meier(d["t"], d["status"].astype(bool))
-    np.testing.assert_allclose(km2.summary["survival"], km.summary["survival"], rtol=1e-12)
+    np.testing.assert_allclose(
+        km2.summary["survival"], km.summary["survival"], rtol=1e-12
+    )
 
 
 @pytest.mark.parametrize("interval", ["plain", "log", "log-log"])
 def test_km_intervals_match_closed_forms(interval):
     # Klein & Moeschberger 2003, eq. 4.3.1-4.3.3 on the Gehan data at t = 13:
     # S = 0.6902, sum d/(n(n-d)) recomputed by hand from the at-risk counts below.
-    times = np.array([6, 6, 6, 6, 7, 9, 10, 10, 11, 13, 16, 17, 19, 20, 22, 23, 25, 32, 32, 34,
-                      35], dtype=float)
-    event = np.array([1, 1, 1, 0, 1, 0, 1, 0, 0, 1, 1, 0, 0, 0, 1, 1, 0, 0, 0, 0, 0], bool)
+    times = np.array(
+        [6, 6, 6, 6, 7, 9, 10, 10, 11, 13, 16, 17, 19, 20, 22, 23, 25, 32, 32, 34, 35],
+        dtype=float,
+    )
+    event = np.array(
+        [1, 1, 1, 0, 1, 0, 1, 0, 0, 1, 1, 0, 0, 0, 1, 1, 0, 0, 0, 0, 0], bool
+    )
     km = kaplan_meier(times, event, interval=interval)
     row = km.table.set_index("time").loc[13]
     s = (18 / 21) * (16 / 17) * (14 / 15) * (11 / 12)
@@ -244,7 +290,7 @@ def test_km_intervals_match_closed_forms(interval):
         lo, hi = s * math.exp(-z * math.sqrt(v)), s * math.exp(z * math.sqrt(v))
     else:
         theta = math.exp(z * math.sqrt(v) / math.log(s))
-        lo, hi = s ** (1 / theta), s ** theta
+        lo, hi = s ** (1 / theta), s**theta
     assert row["survival"] == pytest.approx(s, rel=1e-12)
     assert row["lower"] == pytest.approx(lo, rel=1e-9)
     assert row["upper"] == pytest.approx(min(hi, 1.0), rel=1e-9)
@@ -271,13 +317,16 @@ def test_km_matches_lifelines_with_delayed_entry():
     sf = ref.survival_function_.iloc[:, 0]
     tab = km.table.set_index("time")
     common = tab.index.intersection(sf.index)
-    np.testing.assert_allclose(tab.loc[common, "survival"], sf.loc[common], rtol=1e-10,
-                               err_msg=ver)
+    np.testing.assert_allclose(
+        tab.loc[common, "survival"], sf.loc[common], rtol=1e-10, err_msg=ver
+    )
     ci = ref.confidence_interval_survival_function_
-    np.testing.assert_allclose(tab.loc[common, "lower"], ci.iloc[:, 0].loc[common], atol=1e-8,
-                               err_msg=ver)
-    np.testing.assert_allclose(tab.loc[common, "upper"], ci.iloc[:, 1].loc[common], atol=1e-8,
-                               err_msg=ver)
+    np.testing.assert_allclose(
+        tab.loc[common, "lower"], ci.iloc[:, 0].loc[common], atol=1e-8, err_msg=ver
+    )
+    np.testing.assert_allclose(
+        tab.loc[common, "upper"], ci.iloc[:, 1].loc[common], atol=1e-8, err_msg=ver
+    )
     et = ref.event_table
     np.testing.assert_array_equal(tab.loc[common, "at_risk"], et.loc[common, "at_risk"])
     np.testing.assert_array_equal(tab.loc[common, "events"], et.loc[common, "observed"])
@@ -301,27 +350,38 @@ def test_cumulative_incidence_matches_lifelines_aalen_johansen():
     cause = rng.choice(["", "filament", "other"], n, p=[0.4, 0.35, 0.25])
     ci = cumulative_incidence(t, cause)
     code = np.select([cause == "filament", cause == "other"], [1, 2], 0)
-    ref = AalenJohansenFitter(calculate_variance=False).fit(t, code, event_of_interest=1)
+    ref = AalenJohansenFitter(calculate_variance=False).fit(
+        t, code, event_of_interest=1
+    )
     mine = ci[ci["cause"] == "filament"].set_index("time")["cumulative_incidence"]
     theirs = ref.cumulative_density_.iloc[:, 0]
     common = mine.index.intersection(theirs.index)
     assert len(common) > 50
-    np.testing.assert_allclose(mine.loc[common], theirs.loc[common], atol=1e-10,
-                               err_msg=lifelines.__version__)
+    np.testing.assert_allclose(
+        mine.loc[common], theirs.loc[common], atol=1e-10, err_msg=lifelines.__version__
+    )
     # the causes add up to 1 - S_KM
     km = kaplan_meier(t, cause != "")
     total = ci.groupby("time")["cumulative_incidence"].sum()
-    np.testing.assert_allclose(total.to_numpy(), 1 - km.table["survival"].to_numpy(), atol=1e-12)
+    np.testing.assert_allclose(
+        total.to_numpy(), 1 - km.table["survival"].to_numpy(), atol=1e-12
+    )
 
 
 def test_bad_durations_name_the_record():
     with pytest.raises(InputError, match="tube T2: duration is 0.0"):
         kaplan_meier([5.0, 0.0], [True, False], ids=np.array(["T1", "T2"]))
     with pytest.raises(InputError, match="tube B: duration is -3.0"):
-        fit_weibull([5.0, -3.0, 4.0], [True, True, False], ids=np.array(["A", "B", "C"]))
+        fit_weibull(
+            [5.0, -3.0, 4.0], [True, True, False], ids=np.array(["A", "B", "C"])
+        )
     with pytest.raises(InputError, match="tube X: entry 9.0 is not before exit 5.0"):
-        fit_weibull([5.0, 6.0, 7.0], [True, True, True], [9.0, 0.0, 0.0],
-                    ids=np.array(["X", "Y", "Z"]))
+        fit_weibull(
+            [5.0, 6.0, 7.0],
+            [True, True, True],
+            [9.0, 0.0, 0.0],
+            ids=np.array(["X", "Y", "Z"]),
+        )
 
 
 def test_too_few_failures_is_a_clear_error():

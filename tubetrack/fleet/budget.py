@@ -70,7 +70,9 @@ def load_price_list(path: str | Path) -> pd.DataFrame:
         default_cur = data.get("currency")
         prices = data.get("prices")
         if not isinstance(prices, dict):
-            raise InputError(f"price list {p}: needs a [prices] table of model label -> price.")
+            raise InputError(
+                f"price list {p}: needs a [prices] table of model label -> price."
+            )
         rows = []
         for label, v in prices.items():
             if isinstance(v, dict):
@@ -81,8 +83,14 @@ def load_price_list(path: str | Path) -> pd.DataFrame:
     else:
         try:
             frame = pd.read_csv(p, dtype={"model_label": str, "currency": str})
-        except (pd.errors.ParserError, UnicodeDecodeError, pd.errors.EmptyDataError) as exc:
-            raise InputError(f"price list {p}: cannot read it as CSV ({exc}).") from None
+        except (
+            pd.errors.ParserError,
+            UnicodeDecodeError,
+            pd.errors.EmptyDataError,
+        ) as exc:
+            raise InputError(
+                f"price list {p}: cannot read it as CSV ({exc})."
+            ) from None
         frame.columns = [c.strip().lower() for c in frame.columns]
         if "price_currency" in frame.columns and "currency" not in frame.columns:
             frame = frame.rename(columns={"price_currency": "currency"})
@@ -110,7 +118,9 @@ def load_price_list(path: str | Path) -> pd.DataFrame:
     return frame.reset_index(drop=True)
 
 
-def tube_prices(per_tube: pd.DataFrame, price_list: pd.DataFrame | None) -> pd.DataFrame:
+def tube_prices(
+    per_tube: pd.DataFrame, price_list: pd.DataFrame | None
+) -> pd.DataFrame:
     """Price of each forecast tube: price list by model label, else the tube's own price.
 
     Returns ``per_tube`` with ``unit_price``, ``currency`` and ``price_source``
@@ -176,7 +186,9 @@ def spend_forecast(
             TubetrackWarning,
             stacklevel=2,
         )
-    t = forecast.tubes.merge(prices[["tube_id", "unit_price", "currency"]], on="tube_id")
+    t = forecast.tubes.merge(
+        prices[["tube_id", "unit_price", "currency"]], on="tube_id"
+    )
     t["quarter"] = pd.PeriodIndex(pd.to_datetime(t["month"]), freq="Q").astype(str)
     t["month_label"] = pd.to_datetime(t["month"]).dt.strftime("%Y-%m")
     rng = np.random.default_rng(seed)
@@ -184,7 +196,11 @@ def spend_forecast(
     for kind, key in (("month", "month_label"), ("quarter", "quarter")):
         g = (
             t.groupby([key, "tube_id", "currency"], sort=True)
-            .agg(p=("p_replace", "sum"), price=("unit_price", "first"), start=("month", "min"))
+            .agg(
+                p=("p_replace", "sum"),
+                price=("unit_price", "first"),
+                start=("month", "min"),
+            )
             .reset_index()
         )
         for (period, cur), gg in g.groupby([key, "currency"], sort=True):
@@ -195,7 +211,9 @@ def spend_forecast(
             sims = np.zeros(n_sims)
             for price_value in np.unique(c):
                 pmf = poisson_binomial_pmf(p[c == price_value])
-                sims += price_value * rng.choice(len(pmf), size=n_sims, p=pmf / pmf.sum())
+                sims += price_value * rng.choice(
+                    len(pmf), size=n_sims, p=pmf / pmf.sum()
+                )
             q = np.quantile(sims, [0.025, 0.10, 0.90, 0.975]) if len(p) else np.zeros(4)
             rows.append(
                 {
@@ -213,7 +231,9 @@ def spend_forecast(
                     "tubes_unpriced": len(gg) - len(priced),
                 }
             )
-    return BudgetResult(summary=pd.DataFrame(rows), prices=prices, n_sims=n_sims, seed=seed)
+    return BudgetResult(
+        summary=pd.DataFrame(rows), prices=prices, n_sims=n_sims, seed=seed
+    )
 
 
 @dataclass(frozen=True)
@@ -241,7 +261,9 @@ def spares_plan(
         )
     per = forecast.per_tube.reset_index(drop=True)
     horizon_days = (
-        (forecast.tubes["period_end_utc"].max() - pd.Timestamp(forecast.as_of)).total_seconds()
+        (
+            forecast.tubes["period_end_utc"].max() - pd.Timestamp(forecast.as_of)
+        ).total_seconds()
         / 86400.0
         if len(forecast.tubes)
         else 0.0

@@ -132,7 +132,9 @@ def pmf_interval(pmf: np.ndarray, level: float) -> tuple[int, int]:
 # ----------------------------------------------------------------------------------------------
 
 
-def renewal_function(cdf, t_max: float, n_steps: int = 2000) -> tuple[np.ndarray, np.ndarray]:
+def renewal_function(
+    cdf, t_max: float, n_steps: int = 2000
+) -> tuple[np.ndarray, np.ndarray]:
     """Ordinary renewal function M(t) = F(t) + int_0^t M(t - x) dF(x) on a grid.
 
     Parameters
@@ -195,7 +197,9 @@ def delayed_renewal(first_cdf, renewal_m, t: np.ndarray) -> np.ndarray:
 # ----------------------------------------------------------------------------------------------
 
 
-def month_edges(as_of: datetime, months: int = 12, horizon_days: float | None = None) -> list:
+def month_edges(
+    as_of: datetime, months: int = 12, horizon_days: float | None = None
+) -> list:
     """Calendar month boundaries (UTC) from ``as_of``.
 
     The first period runs from ``as_of`` to the first of the next month (unless ``as_of`` is a
@@ -212,7 +216,9 @@ def month_edges(as_of: datetime, months: int = 12, horizon_days: float | None = 
             return [start + pd.DateOffset(months=i) for i in range(months + 1)]
         return [start] + [first + pd.DateOffset(months=i) for i in range(months)]
     if horizon_days <= 0:
-        raise InputError(f"--horizon-days is {horizon_days!r}; give a positive number of days.")
+        raise InputError(
+            f"--horizon-days is {horizon_days!r}; give a positive number of days."
+        )
     end = start + pd.Timedelta(days=float(horizon_days))
     edges = [start]
     k = 0 if first > start else 1
@@ -226,7 +232,9 @@ def month_edges(as_of: datetime, months: int = 12, horizon_days: float | None = 
     return edges
 
 
-def health_filament_cdf(rul_cdf: pd.DataFrame, tube_ids, days: np.ndarray) -> np.ndarray:
+def health_filament_cdf(
+    rul_cdf: pd.DataFrame, tube_ids, days: np.ndarray
+) -> np.ndarray:
     """Per-tube filament end-of-life CDF at ``days`` from the health forecast (contract E).
 
     Returns an array (len(tube_ids), len(days)); rows are NaN for tubes without a forecast.
@@ -243,7 +251,9 @@ def health_filament_cdf(rul_cdf: pd.DataFrame, tube_ids, days: np.ndarray) -> np
     for (tube, _spot), g in r.groupby(["tube_id", "focal_spot"], sort=False):
         g = g.sort_values("horizon_days")
         x = np.concatenate([[0.0], g["horizon_days"].to_numpy(dtype=float)])
-        y = np.concatenate([[0.0], np.clip(g["p_end_of_life"].to_numpy(dtype=float), 0, 1)])
+        y = np.concatenate(
+            [[0.0], np.clip(g["p_end_of_life"].to_numpy(dtype=float), 0, 1)]
+        )
         y = np.maximum.accumulate(y)
         p = np.interp(days, x, y)
         i = pos[tube]
@@ -394,7 +404,12 @@ def replacement_forecast(
     n_grid = max(int(math.ceil(horizon / grid_days)), 1)
     grid = np.linspace(0.0, horizon, n_grid + 1)
     first_cdf, source, p_fil, rate, more = tube_replacement_cdf(
-        active, fleet_fit, grid, other_fit=other_fit, health_rul_cdf=health_rul_cdf, clock=clock
+        active,
+        fleet_fit,
+        grid,
+        other_fit=other_fit,
+        health_rul_cdf=health_rul_cdf,
+        clock=clock,
     )
     notes.extend(more)
 
@@ -414,13 +429,17 @@ def replacement_forecast(
     else:
         expected = first_cdf
         p2 = np.zeros(len(active))
-    at_edges = np.stack([np.interp(edge_days, grid, row) for row in expected]) if len(
-        active
-    ) else np.zeros((0, len(edge_days)))
+    at_edges = (
+        np.stack([np.interp(edge_days, grid, row) for row in expected])
+        if len(active)
+        else np.zeros((0, len(edge_days)))
+    )
     monthly = np.diff(at_edges, axis=1)  # (n, months)
     if renewal and np.any(monthly > 0.5):
-        notes.append("some monthly expected counts exceed 0.5; the per-month Bernoulli "
-                     "approximation of the renewal option is coarse for them.")
+        notes.append(
+            "some monthly expected counts exceed 0.5; the per-month Bernoulli "
+            "approximation of the renewal option is coarse for them."
+        )
     monthly_p = np.clip(monthly, 0, 1)
 
     month_starts = [pd.Timestamp(e).to_period("M").to_timestamp() for e in edges[:-1]]
@@ -433,7 +452,9 @@ def replacement_forecast(
             "model_label": np.repeat(active["model_label"].to_numpy(), k),
             "month": np.tile(np.array(month_starts, dtype="datetime64[ns]"), n),
             "month_index": np.tile(np.arange(1, k + 1), n),
-            "period_start_utc": np.tile(np.array(edges[:-1], dtype="datetime64[ns]"), n),
+            "period_start_utc": np.tile(
+                np.array(edges[:-1], dtype="datetime64[ns]"), n
+            ),
             "period_end_utc": np.tile(np.array(edges[1:], dtype="datetime64[ns]"), n),
             "p_replace": monthly.ravel(),
             "p_replace_cum": (at_edges[:, 1:] - at_edges[:, :1]).ravel(),
@@ -473,7 +494,10 @@ def replacement_forecast(
             lo, hi = pmf_interval(cum_total, 0.95)
         else:
             lo, hi = pmf_interval(
-                poisson_binomial_pmf(np.clip(at_edges[:, j + 1] - at_edges[:, 0], 0, 1)), 0.95
+                poisson_binomial_pmf(
+                    np.clip(at_edges[:, j + 1] - at_edges[:, 0], 0, 1)
+                ),
+                0.95,
             )
         cum_lo.append(lo)
         cum_hi.append(hi)
@@ -496,7 +520,9 @@ def replacement_forecast(
         }
     )
     if n == 0:
-        warnings.warn("no tubes in service to forecast.", TubetrackWarning, stacklevel=2)
+        warnings.warn(
+            "no tubes in service to forecast.", TubetrackWarning, stacklevel=2
+        )
     return ForecastResult(
         tubes=tubes,
         summary=summary,
@@ -508,7 +534,9 @@ def replacement_forecast(
     )
 
 
-def expected_failures_next(fit: WeibullResult, ages, horizon: float, level: float = 0.95):
+def expected_failures_next(
+    fit: WeibullResult, ages, horizon: float, level: float = 0.95
+):
     """Expected failures among survivors of the given ages within ``horizon``, with interval.
 
     Returns (expected, lower, upper, pmf): Poisson-binomial of the conditional probabilities

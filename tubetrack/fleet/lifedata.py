@@ -304,7 +304,13 @@ def build_life_data(
     import pandas as pd
 
     t = tubes.copy()
-    for col in ("removed_at_utc", "removal_reason", "price", "price_currency", "model_label"):
+    for col in (
+        "removed_at_utc",
+        "removal_reason",
+        "price",
+        "price_currency",
+        "model_label",
+    ):
         if col not in t.columns:
             t[col] = None
     t["installed_at_utc"] = pd.to_datetime(t["installed_at_utc"])
@@ -320,7 +326,9 @@ def build_life_data(
     as_of_ts = pd.Timestamp(as_of)
     t = t[t["installed_at_utc"] < as_of_ts].copy()
     if systems is not None and len(systems):
-        sys_cols = [c for c in ("site", "modality", "generator_type") if c in systems.columns]
+        sys_cols = [
+            c for c in ("site", "modality", "generator_type") if c in systems.columns
+        ]
         t = t.drop(columns=[c for c in sys_cols if c in t.columns]).merge(
             systems[["system_id", *sys_cols]], on="system_id", how="left"
         )
@@ -334,12 +342,16 @@ def build_life_data(
     withdrawn = removed & reason.isin(WITHDRAWAL_REASONS)
     failed = removed & ~withdrawn
     t["failed"] = failed.to_numpy(dtype=bool)
-    t["status"] = np.where(failed, "failed", np.where(withdrawn, "withdrawn", "in_service"))
+    t["status"] = np.where(
+        failed, "failed", np.where(withdrawn, "withdrawn", "in_service")
+    )
     t["cause"] = np.where(
         failed, np.where(reason.isin(FILAMENT_REASONS), "filament", "other"), ""
     )
     end = t["removed_at_utc"].where(removed, as_of_ts)
-    t["exit_days"] = (end - t["installed_at_utc"]).dt.total_seconds().to_numpy() / _DAY_S
+    t["exit_days"] = (
+        end - t["installed_at_utc"]
+    ).dt.total_seconds().to_numpy() / _DAY_S
 
     if log_start is not None and len(log_start):
         ls = log_start[["system_id", "log_start_utc"]]
@@ -394,15 +406,37 @@ def build_life_data(
         recent = t[f"recent_{col}"].astype(float) / recent_days
         t[f"rate_{col}"] = recent.where(recent > 0, mean_rate)
     keep = [
-        "tube_id", "system_id", "model_label", "site", "modality", "generator_type",
-        "installed_at_utc", "removed_at_utc", "removal_reason", "status", "failed", "cause",
-        "log_start_utc", "left_truncated", "entry_days", "exit_days",
-        *work_cols, *[f"entry_{c}" for c in work_cols], "rate_days",
-        *[f"rate_{c}" for c in work_cols], "workload_entry_estimated", "price", "price_currency",
+        "tube_id",
+        "system_id",
+        "model_label",
+        "site",
+        "modality",
+        "generator_type",
+        "installed_at_utc",
+        "removed_at_utc",
+        "removal_reason",
+        "status",
+        "failed",
+        "cause",
+        "log_start_utc",
+        "left_truncated",
+        "entry_days",
+        "exit_days",
+        *work_cols,
+        *[f"entry_{c}" for c in work_cols],
+        "rate_days",
+        *[f"rate_{c}" for c in work_cols],
+        "workload_entry_estimated",
+        "price",
+        "price_currency",
     ]
-    frame = t[keep].sort_values(["system_id", "installed_at_utc"]).reset_index(drop=True)
+    frame = (
+        t[keep].sort_values(["system_id", "installed_at_utc"]).reset_index(drop=True)
+    )
     validate_durations(
-        frame["exit_days"].to_numpy(), frame["entry_days"].to_numpy(), frame["tube_id"].to_numpy()
+        frame["exit_days"].to_numpy(),
+        frame["entry_days"].to_numpy(),
+        frame["tube_id"].to_numpy(),
     )
     return LifeData(frame=frame, as_of=as_of_ts.to_pydatetime(), excluded=excluded)
 

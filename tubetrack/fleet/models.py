@@ -39,7 +39,9 @@ class FleetModels:
     notes: tuple[str, ...]
 
 
-def fit_fleet_models(life: LifeData, clock: str = "days", alpha: float = 0.05) -> FleetModels:
+def fit_fleet_models(
+    life: LifeData, clock: str = "days", alpha: float = 0.05
+) -> FleetModels:
     """Fit the fleet Weibull models (cause-specific fits censor the other cause).
 
     Raises
@@ -56,7 +58,11 @@ def fit_fleet_models(life: LifeData, clock: str = "days", alpha: float = 0.05) -
         t = tab if cause is None else life.table(clock, cause)
         try:
             fits[cause or "all"] = fit_weibull(
-                t["exit"], t["event"], t["entry"], ids=t["tube_id"].to_numpy(), alpha=alpha,
+                t["exit"],
+                t["event"],
+                t["entry"],
+                ids=t["tube_id"].to_numpy(),
+                alpha=alpha,
                 clock=clock,
             )
         except AnalysisError as exc:
@@ -65,7 +71,10 @@ def fit_fleet_models(life: LifeData, clock: str = "days", alpha: float = 0.05) -
             fits[cause] = None
             notes.append(f"no {cause}-cause Weibull: {exc}")
     return FleetModels(
-        all_cause=fits["all"], filament=fits["filament"], other=fits["other"], clock=clock,
+        all_cause=fits["all"],
+        filament=fits["filament"],
+        other=fits["other"],
+        clock=clock,
         notes=tuple(notes),
     )
 
@@ -73,7 +82,8 @@ def fit_fleet_models(life: LifeData, clock: str = "days", alpha: float = 0.05) -
 def read_health_rul_cdf(con: duckdb.DuckDBPyConnection) -> pd.DataFrame | None:
     """The health worker's ``result_health_rul_cdf`` table, or ``None`` when it does not exist."""
     exists = con.execute(
-        "SELECT count(*) FROM information_schema.tables WHERE table_name = ?", [HEALTH_RUL_TABLE]
+        "SELECT count(*) FROM information_schema.tables WHERE table_name = ?",
+        [HEALTH_RUL_TABLE],
     ).fetchall()
     if not exists or not exists[0][0]:
         return None
@@ -98,8 +108,12 @@ def tube_risk(
     active = life.frame[life.frame["status"] == "in_service"].reset_index(drop=True)
     grid = np.array([0.0, float(horizon_days)])
     cdf, source, p_fil, _, _ = tube_replacement_cdf(
-        active, models.all_cause, grid, other_fit=models.other,
-        health_rul_cdf=health_rul_cdf, clock=models.clock,
+        active,
+        models.all_cause,
+        grid,
+        other_fit=models.other,
+        health_rul_cdf=health_rul_cdf,
+        clock=models.clock,
     )
     out = active[["tube_id", "system_id", "site", "model_label"]].copy()
     out["age_days"] = active["exit_days"].to_numpy(dtype=float)

@@ -38,7 +38,9 @@ def _z(alpha: float) -> float:
     from scipy.stats import norm
 
     if not 0 < alpha < 1:
-        raise InputError(f"alpha is {alpha!r}; it must be between 0 and 1 (0.05 for 95 %).")
+        raise InputError(
+            f"alpha is {alpha!r}; it must be between 0 and 1 (0.05 for 95 %)."
+        )
     return float(norm.ppf(1 - alpha / 2))
 
 
@@ -47,7 +49,9 @@ def _prepare(exit_, event, entry, ids):
     event = np.asarray(event, dtype=bool)
     entry = np.zeros_like(exit_) if entry is None else np.asarray(entry, dtype=float)
     if not (exit_.shape == event.shape == entry.shape) or exit_.ndim != 1:
-        raise InputError("durations, events and entries must be 1-D arrays of equal length.")
+        raise InputError(
+            "durations, events and entries must be 1-D arrays of equal length."
+        )
     validate_durations(exit_, entry if np.any(entry != 0) else None, ids)
     return exit_, event, entry
 
@@ -165,7 +169,9 @@ def kaplan_meier(
     with np.errstate(divide="ignore", invalid="ignore"):
         q = np.where(at_risk > 0, d / np.where(at_risk > 0, at_risk, 1), 0.0)
         s = np.cumprod(1.0 - q)
-        term = np.where(at_risk > d, d / (at_risk * (at_risk - d)), np.where(d > 0, np.inf, 0))
+        term = np.where(
+            at_risk > d, d / (at_risk * (at_risk - d)), np.where(d > 0, np.inf, 0)
+        )
         gw = np.cumsum(term)  # sum d/(n(n-d))
         se = s * np.sqrt(gw)
         if interval == "plain":
@@ -195,7 +201,11 @@ def kaplan_meier(
         }
     )
     return KaplanMeierResult(
-        table=table, interval=interval, alpha=alpha, n=len(exit_), n_events=int(event.sum())
+        table=table,
+        interval=interval,
+        alpha=alpha,
+        n=len(exit_),
+        n_events=int(event.sum()),
     )
 
 
@@ -276,7 +286,9 @@ def _weibull_terms(theta, lt, delta, le, has_entry):
     g_u = -b * nd + b * zz.sum() - b * ze.sum()
     g_v = np.sum(delta * (1 + w)) - np.sum(w * zz) + np.sum(we * ze)
     h_uu = -b * b * zz.sum() + b * b * ze.sum()
-    h_uv = -b * nd + b * zz.sum() + b * np.sum(w * zz) - b * ze.sum() - b * np.sum(we * ze)
+    h_uv = (
+        -b * nd + b * zz.sum() + b * np.sum(w * zz) - b * ze.sum() - b * np.sum(we * ze)
+    )
     h_vv = np.sum(delta * w) - np.sum(w * zz * (1 + w)) + np.sum(we * ze * (1 + we))
     return ll, np.array([g_u, g_v]), np.array([[h_uu, h_uv], [h_uv, h_vv]])
 
@@ -317,7 +329,9 @@ class WeibullResult:
     def eta_interval(self, alpha: float | None = None) -> tuple[float, float]:
         """Wald interval of eta on the log scale."""
         z = _z(self.alpha if alpha is None else alpha)
-        return self.eta * math.exp(-z * self.se_log_eta), self.eta * math.exp(z * self.se_log_eta)
+        return self.eta * math.exp(-z * self.se_log_eta), self.eta * math.exp(
+            z * self.se_log_eta
+        )
 
     def beta_interval(self, alpha: float | None = None) -> tuple[float, float]:
         """Wald interval of beta on the log scale."""
@@ -343,7 +357,11 @@ class WeibullResult:
 
     def cdf(self, t) -> np.ndarray:
         """F(t) = 1 - S(t) [-]."""
-        return -np.expm1(-np.power(np.clip(np.asarray(t, dtype=float), 0, None) / self.eta, self.beta))
+        return -np.expm1(
+            -np.power(
+                np.clip(np.asarray(t, dtype=float), 0, None) / self.eta, self.beta
+            )
+        )
 
     def survival_bounds(self, t, alpha: float | None = None) -> pd.DataFrame:
         """S(t) with delta-method bounds computed on log H(t) = beta (log t - log eta).
@@ -357,7 +375,11 @@ class WeibullResult:
         with np.errstate(divide="ignore"):
             w = self.beta * (np.log(t) - math.log(self.eta))
         gu, gv = -self.beta, w
-        var = gu * gu * self.cov[0, 0] + 2 * gu * gv * self.cov[0, 1] + gv * gv * self.cov[1, 1]
+        var = (
+            gu * gu * self.cov[0, 0]
+            + 2 * gu * gv * self.cov[0, 1]
+            + gv * gv * self.cov[1, 1]
+        )
         se = np.sqrt(var)
         return pd.DataFrame(
             {
@@ -368,7 +390,9 @@ class WeibullResult:
             }
         )
 
-    def b_life(self, p: float, alpha: float | None = None) -> tuple[float, float, float]:
+    def b_life(
+        self, p: float, alpha: float | None = None
+    ) -> tuple[float, float, float]:
         """Time by which a fraction ``p`` has failed (B10: p = 0.1), with delta-method bounds.
 
         log t_p = log eta + log(-log(1 - p)) / beta; bounds exp(log t_p +/- z se)
@@ -378,7 +402,11 @@ class WeibullResult:
         c = math.log(-math.log1p(-p))
         log_tp = math.log(self.eta) + c / self.beta
         gu, gv = 1.0, -c / self.beta
-        var = gu * gu * self.cov[0, 0] + 2 * gu * gv * self.cov[0, 1] + gv * gv * self.cov[1, 1]
+        var = (
+            gu * gu * self.cov[0, 0]
+            + 2 * gu * gv * self.cov[0, 1]
+            + gv * gv * self.cov[1, 1]
+        )
         se = math.sqrt(max(var, 0.0))
         return math.exp(log_tp), math.exp(log_tp - z * se), math.exp(log_tp + z * se)
 
@@ -501,11 +529,21 @@ def fit_weibull(
     best = None
     for start in ([u0, 0.0], [float(np.log(exit_).mean()) + 0.5, math.log(2.0)]):
         with np.errstate(over="ignore", invalid="ignore"):
-            res = minimize(fun, np.array(start), jac=jac, hess=hess, method="trust-exact",
-                           options={"gtol": 1e-10, "maxiter": 500})
+            res = minimize(
+                fun,
+                np.array(start),
+                jac=jac,
+                hess=hess,
+                method="trust-exact",
+                options={"gtol": 1e-10, "maxiter": 500},
+            )
         if np.all(np.isfinite(res.x)) and (best is None or res.fun < best.fun):
             best = res
-    if best is None or not np.isfinite(best.fun) or np.max(np.abs(jac(best.x))) > 1e-4 * max(1, r):
+    if (
+        best is None
+        or not np.isfinite(best.fun)
+        or np.max(np.abs(jac(best.x))) > 1e-4 * max(1, r)
+    ):
         raise AnalysisError(
             "the Weibull fit did not converge. Likely causes: all failures at (nearly) the same "
             "time, failures only at the very start, or almost no censored time. Check the "
@@ -580,19 +618,29 @@ def survival_by_group(
     groups = (
         [("fleet", table)]
         if col is None
-        else [(str(k), g) for k, g in table.groupby(table[col].fillna("(unknown)"), sort=True)]
+        else [
+            (str(k), g)
+            for k, g in table.groupby(table[col].fillna("(unknown)"), sort=True)
+        ]
     )
     rows, kms, fits = [], [], {}
     for name, g in groups:
         ids = g["tube_id"].to_numpy() if "tube_id" in g else None
         entry = g["entry"].to_numpy()
-        km = kaplan_meier(g["exit"], g["event"], entry, ids=ids, alpha=alpha, interval=interval)
+        km = kaplan_meier(
+            g["exit"], g["event"], entry, ids=ids, alpha=alpha, interval=interval
+        )
         k = km.table.copy()
         k.insert(0, "group", name)
         kms.append(k)
         r = int(g["event"].sum())
-        row = {"group_by": by or "fleet", "group": name, "n": len(g), "failures": r,
-               "km_median": km.median()}
+        row = {
+            "group_by": by or "fleet",
+            "group": name,
+            "n": len(g),
+            "failures": r,
+            "km_median": km.median(),
+        }
         if r < min_failures:
             row["message"] = (
                 f"only {r} failure(s) among {len(g)} tubes (need >= {min_failures}); "
@@ -600,7 +648,9 @@ def survival_by_group(
             )
         else:
             try:
-                fit = fit_weibull(g["exit"], g["event"], entry, ids=ids, alpha=alpha, clock=clock)
+                fit = fit_weibull(
+                    g["exit"], g["event"], entry, ids=ids, alpha=alpha, clock=clock
+                )
             except AnalysisError as exc:
                 row["message"] = f"Weibull fit failed: {exc}"
             else:

@@ -78,7 +78,9 @@ def mtbf_chi_square_bounds(
     from scipy.stats import chi2
 
     if total_time < 0 or failures < 0:
-        raise InputError(f"MTBF needs T >= 0 and r >= 0, got T={total_time}, r={failures}.")
+        raise InputError(
+            f"MTBF needs T >= 0 and r >= 0, got T={total_time}, r={failures}."
+        )
     a = 1 - confidence
     lower = 2 * total_time / chi2.ppf(1 - a / 2, 2 * failures + 2)
     if failures == 0:
@@ -87,19 +89,29 @@ def mtbf_chi_square_bounds(
     return total_time / failures, lower, upper
 
 
-def classify_downtime(downtime: pd.DataFrame, partial_weight: float = 0.5) -> pd.DataFrame:
+def classify_downtime(
+    downtime: pd.DataFrame, partial_weight: float = 0.5
+) -> pd.DataFrame:
     """Add ``category`` (corrective | preventive | external), ``state`` code and ``weight``."""
     d = downtime.copy()
     cause = d["cause"].fillna("other").astype(str).str.lower()
     planned = d["planned"].fillna(False).astype(bool) if "planned" in d else False
-    sev = d["severity"].fillna("hard_down").astype(str).str.lower() if "severity" in d else "hard_down"
+    sev = (
+        d["severity"].fillna("hard_down").astype(str).str.lower()
+        if "severity" in d
+        else "hard_down"
+    )
     external = cause == "external"
     preventive = ~external & (planned | (cause == "preventive"))
     corrective = ~external & ~preventive
     partial = corrective & (sev == "partial")
-    d["category"] = np.where(external, "external", np.where(preventive, "preventive", "corrective"))
+    d["category"] = np.where(
+        external, "external", np.where(preventive, "preventive", "corrective")
+    )
     d["state"] = np.select(
-        [external, preventive, partial], [_EXTERNAL, _PREVENTIVE, _PARTIAL], default=_HARD
+        [external, preventive, partial],
+        [_EXTERNAL, _PREVENTIVE, _PARTIAL],
+        default=_HARD,
     )
     d["weight"] = np.where(partial, partial_weight, 1.0)
     d["is_tube"] = (cause == "tube").to_numpy()
@@ -114,7 +126,9 @@ def period_edges(start, end, period: str = "month") -> list:
         raise InputError(f"period {period!r} is not month or quarter.")
     freq = "MS" if period == "month" else "QS"
     start, end = pd.Timestamp(start), pd.Timestamp(end)
-    inner = [t for t in pd.date_range(start.normalize(), end, freq=freq) if start < t < end]
+    inner = [
+        t for t in pd.date_range(start.normalize(), end, freq=freq) if start < t < end
+    ]
     return [start, *inner, end]
 
 
@@ -160,7 +174,9 @@ def uptime(
     import pandas as pd
 
     if not 0 <= partial_weight <= 1:
-        raise InputError(f"partial weight is {partial_weight!r}; give a number from 0 to 1.")
+        raise InputError(
+            f"partial weight is {partial_weight!r}; give a number from 0 to 1."
+        )
     start, end = pd.Timestamp(start), pd.Timestamp(end)
     if end <= start:
         raise InputError(f"uptime window end {end} is not after its start {start}.")
@@ -187,19 +203,39 @@ def uptime(
     sched_missing = 0
     for sid in ids:
         info = sys_tab.loc[sid] if sid in sys_tab.index else None
-        sched = float(info["scheduled_hours_per_week"]) if info is not None and pd.notna(
-            info.get("scheduled_hours_per_week")) else math.nan
+        sched = (
+            float(info["scheduled_hours_per_week"])
+            if info is not None and pd.notna(info.get("scheduled_hours_per_week"))
+            else math.nan
+        )
         if not math.isfinite(sched):
             sched_missing += 1
             sched = 168.0
-        target = float(info["uptime_target_pct"]) if info is not None and pd.notna(
-            info.get("uptime_target_pct")) else math.nan
+        target = (
+            float(info["uptime_target_pct"])
+            if info is not None and pd.notna(info.get("uptime_target_pct"))
+            else math.nan
+        )
         site = info["site"] if info is not None and "site" in info else None
         recs = d[d["system_id"] == sid] if len(d) else d
-        rs = np.clip(recs["start_utc"].to_numpy(dtype="datetime64[ns]").astype(np.int64),
-                     edges_ns[0], edges_ns[-1]) if len(recs) else np.zeros(0, np.int64)
-        re_ = np.clip(recs["end_utc"].to_numpy(dtype="datetime64[ns]").astype(np.int64),
-                      edges_ns[0], edges_ns[-1]) if len(recs) else np.zeros(0, np.int64)
+        rs = (
+            np.clip(
+                recs["start_utc"].to_numpy(dtype="datetime64[ns]").astype(np.int64),
+                edges_ns[0],
+                edges_ns[-1],
+            )
+            if len(recs)
+            else np.zeros(0, np.int64)
+        )
+        re_ = (
+            np.clip(
+                recs["end_utc"].to_numpy(dtype="datetime64[ns]").astype(np.int64),
+                edges_ns[0],
+                edges_ns[-1],
+            )
+            if len(recs)
+            else np.zeros(0, np.int64)
+        )
         bounds = np.unique(np.concatenate([edges_ns, rs, re_]))
         seg_s, seg_e = bounds[:-1], bounds[1:]
         hours = (seg_e - seg_s) / 1e9 / _H
@@ -263,10 +299,18 @@ def uptime(
                 }
             )
         # corrective episodes: maximal runs of contiguous corrective segments
-        run_start = corrective & np.concatenate([[True], ~corrective[:-1] | (seg_s[1:] != seg_e[:-1])])
+        run_start = corrective & np.concatenate(
+            [[True], ~corrective[:-1] | (seg_s[1:] != seg_e[:-1])]
+        )
         run_id = np.cumsum(run_start) - 1
-        ep = pd.DataFrame({"run": run_id[corrective], "s": seg_s[corrective],
-                           "e": seg_e[corrective], "tube": tube[corrective]})
+        ep = pd.DataFrame(
+            {
+                "run": run_id[corrective],
+                "s": seg_s[corrective],
+                "e": seg_e[corrective],
+                "tube": tube[corrective],
+            }
+        )
         ep = ep.groupby("run").agg(s=("s", "min"), e=("e", "max"), tube=("tube", "any"))
         ep["system_id"] = sid
         episodes.append(ep)
@@ -290,7 +334,9 @@ def uptime(
                 "external_h": tot["ext"],
                 "tube_down_h": tot["tube"],
                 "other_down_h": tot["corr_w"] - tot["tube"],
-                "availability_pct": 100 * (1 - tot["corr_w"] / req_wall) if req_wall > 0 else math.nan,
+                "availability_pct": 100 * (1 - tot["corr_w"] / req_wall)
+                if req_wall > 0
+                else math.nan,
                 "uptime_target_pct": target,
                 "failures": r,
                 "tube_failures": int(ep["tube"].sum()),
@@ -298,7 +344,9 @@ def uptime(
                 "mtbf_h": mtbf,
                 "mtbf_lower_h": lo,
                 "mtbf_upper_h": hi,
-                "mttr_h": float(((ep["e"] - ep["s"]) / 1e9 / _H).mean()) if r else math.nan,
+                "mttr_h": float(((ep["e"] - ep["s"]) / 1e9 / _H).mean())
+                if r
+                else math.nan,
                 "confidence": confidence,
             }
         )
@@ -321,11 +369,17 @@ def uptime(
         eps["end_utc"] = pd.to_datetime(eps["e"])
         eps["duration_h"] = (eps["e"] - eps["s"]) / 1e9 / _H
         eps = eps[["system_id", "start_utc", "end_utc", "duration_h", "tube"]]
-    return UptimeResult(periods=periods, summary=summary, episodes=eps, notes=tuple(notes))
+    return UptimeResult(
+        periods=periods, summary=summary, episodes=eps, notes=tuple(notes)
+    )
 
 
 def _period_label(ts, period: str) -> str:
     import pandas as pd
 
     t = pd.Timestamp(ts)
-    return f"{t.year}-{t.month:02d}" if period == "month" else f"{t.year}-Q{(t.month - 1) // 3 + 1}"
+    return (
+        f"{t.year}-{t.month:02d}"
+        if period == "month"
+        else f"{t.year}-Q{(t.month - 1) // 3 + 1}"
+    )

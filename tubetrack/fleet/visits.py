@@ -69,11 +69,11 @@ def visit_order(
     tube_outage_h
         Expected wall-clock length of a tube outage [h].
     """
-    import pandas as pd
-
     tr = tube_risk.copy()
     tr["log_q"] = np.log1p(-np.clip(tr["p_event"].to_numpy(dtype=float), 0, 1 - 1e-15))
-    tr["log_qf"] = np.log1p(-np.clip(tr["p_filament"].fillna(0).to_numpy(dtype=float), 0, 1 - 1e-15))
+    tr["log_qf"] = np.log1p(
+        -np.clip(tr["p_filament"].fillna(0).to_numpy(dtype=float), 0, 1 - 1e-15)
+    )
     tr["has_fil"] = tr["p_filament"].notna()
     tr = tr.sort_values("age_days", ascending=False)
     g = tr.groupby("system_id", sort=False).agg(
@@ -88,10 +88,28 @@ def visit_order(
     g["risk"] = -np.expm1(g["log_q"])
     g["p_filament_event"] = np.where(g["has_fil"], -np.expm1(g["log_qf"]), np.nan)
     s = systems.set_index("system_id")
-    out = g.join(s[[c for c in ("site", "criticality_weight", "uptime_target_pct",
-                                "scheduled_hours_per_week") if c in s.columns]], how="left")
+    out = g.join(
+        s[
+            [
+                c
+                for c in (
+                    "site",
+                    "criticality_weight",
+                    "uptime_target_pct",
+                    "scheduled_hours_per_week",
+                )
+                if c in s.columns
+            ]
+        ],
+        how="left",
+    )
     out = out.reset_index()
-    for c in ("site", "criticality_weight", "uptime_target_pct", "scheduled_hours_per_week"):
+    for c in (
+        "site",
+        "criticality_weight",
+        "uptime_target_pct",
+        "scheduled_hours_per_week",
+    ):
         if c not in out.columns:
             out[c] = np.nan
     crit = out["criticality_weight"].astype(float).fillna(1.0)
@@ -108,9 +126,13 @@ def visit_order(
     out["score"] = out["risk"] * out["impact"]
     out["site"] = out["site"].fillna("(unknown site)")
     out["horizon_days"] = horizon_days
-    out = out.sort_values(["score", "system_id"], ascending=[False, True]).reset_index(drop=True)
+    out = out.sort_values(["score", "system_id"], ascending=[False, True]).reset_index(
+        drop=True
+    )
     out["rank"] = np.arange(1, len(out) + 1)
-    out["site_rank"] = out.groupby("site")["score"].rank(method="first", ascending=False).astype(int)
+    out["site_rank"] = (
+        out.groupby("site")["score"].rank(method="first", ascending=False).astype(int)
+    )
     site_order = out.groupby("site")["score"].max().sort_values(ascending=False)
     out["_site_order"] = out["site"].map({k: i for i, k in enumerate(site_order.index)})
     out = out.sort_values(["_site_order", "site_rank"]).drop(columns="_site_order")
@@ -122,7 +144,9 @@ def visit_order(
             f"{r['oldest_tube_age_days']:.0f} d)"
         ]
         if not math.isnan(r["p_filament_event"]):
-            parts.append(f"filament end of life {100 * r['p_filament_event']:.1f} % (health)")
+            parts.append(
+                f"filament end of life {100 * r['p_filament_event']:.1f} % (health)"
+            )
         parts.append(f"criticality {r['criticality_weight']:g}")
         if not math.isnan(r["uptime_target_pct"]):
             parts.append(
@@ -134,11 +158,28 @@ def visit_order(
         return "; ".join(parts)
 
     out["reason"] = [reason(r) for r in out.to_dict("records")] if len(out) else []
-    cols = ["rank", "site", "site_rank", "system_id", "score", "risk", "p_filament_event",
-            "impact", "criticality_weight", "uptime_target_pct", "contract_share",
-            "tubes_in_service", "oldest_tube_id", "oldest_tube_age_days", "risk_source",
-            "horizon_days", "reason"]
-    return VisitsResult(summary=out[cols].reset_index(drop=True), tube_outage_h=tube_outage_h)
+    cols = [
+        "rank",
+        "site",
+        "site_rank",
+        "system_id",
+        "score",
+        "risk",
+        "p_filament_event",
+        "impact",
+        "criticality_weight",
+        "uptime_target_pct",
+        "contract_share",
+        "tubes_in_service",
+        "oldest_tube_id",
+        "oldest_tube_age_days",
+        "risk_source",
+        "horizon_days",
+        "reason",
+    ]
+    return VisitsResult(
+        summary=out[cols].reset_index(drop=True), tube_outage_h=tube_outage_h
+    )
 
 
 def typical_tube_outage_h(episodes: pd.DataFrame) -> float:
