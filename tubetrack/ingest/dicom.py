@@ -462,11 +462,17 @@ def _read_image(
 
 
 def _dcmread(data: bytes, force: bool) -> Any:
+    import warnings
+
     import pydicom
 
-    return pydicom.dcmread(
-        io.BytesIO(data), stop_before_pixels=True, specific_tags=_TAGS, force=force
-    )
+    with (
+        warnings.catch_warnings()
+    ):  # malformed input is reported per file, not as warnings
+        warnings.simplefilter("ignore")
+        return pydicom.dcmread(
+            io.BytesIO(data), stop_before_pixels=True, specific_tags=_TAGS, force=force
+        )
 
 
 def _safe_reason(exc: BaseException) -> str:
@@ -718,10 +724,14 @@ def _resolve_devices(con: duckdb.DuckDBPyConnection, rows: pd.DataFrame) -> pd.S
         if sys_id is None:
             sys_id = _placeholder_id(serial, station)
             same_serial = (
-                rows["device_serial"].isna() if serial is None else rows["device_serial"] == serial
+                rows["device_serial"].isna()
+                if serial is None
+                else rows["device_serial"] == serial
             )
             same_station = (
-                rows["station_name"].isna() if station is None else rows["station_name"] == station
+                rows["station_name"].isna()
+                if station is None
+                else rows["station_name"] == station
             )
             modality = rows.loc[same_serial & same_station, "modality"].dropna()
             con.execute(
@@ -1138,9 +1148,9 @@ def _dedupe_and_insert(
         ]
     ].copy()
     stage["source_file"] = [states[int(i)].shown for i in stage["file_idx"]]
-    stage["pref"] = (stage["source_kind"] == "dicom").astype(
-        "int64"
-    )  # 0 = RDSR event, 1 = image
+    # pref 0 = RDSR event, 1 = image; CT slices are grouped by a derived UID instead of matched
+    stage["pref"] = (stage["source_kind"] == "dicom").astype("int64")
+    stage["ct_img"] = rows["ct_group"].notna().to_numpy()
     for c in ("dicom_uid", "system_id", "focal_spot", "source_kind", "source_file"):
         stage[c] = stage[c].astype("object")
     win = int(MATCH_WINDOW_S * 1000)
@@ -1189,14 +1199,17 @@ def _dedupe_and_insert(
             in_batch AS (
                 SELECT DISTINCT a.row_id FROM sb a JOIN _tt_dcm_s b
                   ON a.system_id = b.system_id AND a.nb = b.bucket AND a.row_id <> b.row_id
-                WHERE a.pref = 1 AND (b.pref = 0 OR b.row_id < a.row_id) AND {match}
+                WHERE a.pref = 1
+                  AND (b.pref = 0 OR (b.row_id < a.row_id AND NOT a.ct_img AND NOT b.ct_img))
+                  AND {match}
             ),
             -- rows matching a stored exposure: images match anything; RDSR events match log rows
             -- only (other RDSR events differ by UID; a stored image is replaced instead)
             in_store AS (
                 SELECT DISTINCT a.row_id FROM sb a JOIN _tt_dcm_e b
                   ON a.system_id = b.system_id AND a.nb = b.bucket
-                WHERE (a.pref = 1 OR b.source_kind NOT IN ('dicom', 'rdsr'))
+                WHERE ((a.pref = 1 AND NOT (a.ct_img AND b.source_kind = 'dicom'))
+                       OR b.source_kind NOT IN ('dicom', 'rdsr'))
                   AND (b.dicom_uid IS NULL OR a.dicom_uid IS NULL OR b.dicom_uid <> a.dicom_uid)
                   AND {match}
             )
@@ -1390,6 +1403,12 @@ def ingest_dicom_paths(
             sop_class = _text(ds.get("SOPClassUID")) or _text(
                 getattr(ds, "file_meta", {}).get("MediaStorageSOPClassUID")
             )
+            if not (
+                sop_class
+                or _text(ds.get("Modality"))
+                or "DirectoryRecordSequence" in ds
+            ):
+                raise ValueError("no SOP Class UID and no Modality")
         except Exception as exc:  # pydicom raises many types for corrupt input
             st.status = "failed"
             reason = _safe_reason(exc)
