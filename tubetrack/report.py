@@ -23,6 +23,7 @@ import hashlib
 import html
 import json
 import math
+import os
 import re
 import time
 from dataclasses import dataclass, field
@@ -362,12 +363,33 @@ def js_bundle() -> str:
     if version not in _BUNDLE_CACHE:
         import vl_convert as vlc
 
-        try:
-            bundle = vlc.javascript_bundle(vl_version=version)
-        except TypeError:  # pragma: no cover - older vl-convert without vl_version
-            bundle = vlc.javascript_bundle()
+        cache = _bundle_cache_path(f"{getattr(vlc, '__version__', 'x')}-vl{version}")
+        bundle = None
+        if cache is not None and cache.is_file():
+            bundle = cache.read_text(encoding="utf-8")
+        if not bundle:
+            try:
+                bundle = vlc.javascript_bundle(vl_version=version)
+            except TypeError:  # pragma: no cover - older vl-convert without vl_version
+                bundle = vlc.javascript_bundle()
+            if cache is not None:
+                try:
+                    cache.parent.mkdir(parents=True, exist_ok=True)
+                    tmp = cache.with_suffix(f".tmp{os.getpid()}")
+                    tmp.write_text(bundle, encoding="utf-8")
+                    tmp.replace(cache)
+                except OSError:
+                    pass  # a read-only home: build the bundle each time
         _BUNDLE_CACHE[version] = script_js(bundle)
     return _BUNDLE_CACHE[version]
+
+
+def _bundle_cache_path(key: str) -> Path | None:
+    """Where the JavaScript bundle is cached between runs (it takes seconds to build)."""
+    base = os.environ.get("XDG_CACHE_HOME") or (str(Path.home() / ".cache") if Path.home().exists() else "")
+    if not base:
+        return None
+    return Path(base) / "tubetrack" / f"vega-bundle-{re.sub(r'[^A-Za-z0-9_.-]', '_', key)}.js"
 
 
 def _page(
@@ -561,6 +583,20 @@ def _write_images(spec_json: str, base: Path, scale: float = 2.0) -> list[Path]:
     return [png_path, svg_path]
 
 
+def _render_job(job: tuple[str, Path]) -> list[Path]:
+    return _write_images(job[0], job[1])
+
+
+def render_images(jobs: list[tuple[str, Path]]) -> list[Path]:
+    """Write PNG + SVG for each (spec JSON, path stem), one after the other.
+
+    vl-convert renders one chart at a time per process and threads do not overlap; a process
+    pool was measured no faster on a loaded two-core machine, so images stay sequential and
+    their number is bounded instead (fleet charts plus ``tube_images`` tubes).
+    """
+    return [p for job in jobs for p in _render_job(job)]
+
+
 def _grouped_json(frame: pd.DataFrame, keys: list[str], columns: list[str]) -> dict[tuple, str]:
     """JSON arrays of ``columns`` per group of ``keys``, from ONE vectorised serialisation.
 
@@ -603,7 +639,7 @@ def write_report(
     *,
     images: bool = True,
     tube_ids: list[str] | None = None,
-    tube_images: int = 12,
+    tube_images: int = 6,
     js: str = "auto",
     progress: Any = None,
 ) -> ReportFiles:
@@ -718,17 +754,14 @@ def write_report(
             "Forecast probabilities of end of life against the observed fraction (95 % Wilson intervals).")
     timings["fleet_charts_s"] = time.perf_counter() - t0
 
-    t0 = time.perf_counter()
+    image_jobs: list[tuple[str, Path]] = []
     fleet_images: dict[str, dict[str, str]] = {}
     if images:
         for _section, chart_id, spec_json, _cap in fleet_blocks:
             if not spec_json:
                 continue
-            say(f"image {chart_id}")
-            paths = _write_images(spec_json, out / "img" / chart_id)
-            written_images.extend(paths)
-            fleet_images[chart_id] = {p.suffix[1:]: f"img/{p.name}" for p in paths}
-    timings["fleet_images_s"] = time.perf_counter() - t0
+            image_jobs.append((spec_json, out / "img" / chart_id))
+            fleet_images[chart_id] = {"png": f"img/{chart_id}.png", "svg": f"img/{chart_id}.svg"}
 
     bundle = js_bundle()
     fleet_html = _fleet_body(inputs, fleet_blocks, fleet_images, overview, pages)
@@ -753,8 +786,13 @@ def write_report(
     # ---------------- tube pages
     t0 = time.perf_counter()
     tube_paths = _write_tube_pages(inputs, out, wanted, pages, meta, footer, bundle, js, images,
-                                   tube_images, written_images, say)
+                                   tube_images, image_jobs, say)
     timings["tube_pages_s"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    if image_jobs:
+        say(f"writing {2 * len(image_jobs)} chart images (PNG + SVG) ...")
+        written_images.extend(render_images(image_jobs))
+    timings["images_s"] = time.perf_counter() - t0
     return ReportFiles(
         fleet_html=fleet_path,
         tube_pages=tuple(tube_paths),
@@ -890,7 +928,7 @@ def _fleet_body(inputs: ReportInputs, blocks: list[tuple[str, str, str, str]], i
 
 def _write_tube_pages(inputs: ReportInputs, out: Path, wanted: list[str], pages: dict[str, str], meta: str,
                       footer: str, bundle: str, js: str, images: bool, tube_images: int,
-                      written_images: list[Path], say: Any) -> list[Path]:
+                      image_jobs: list[tuple[str, Path]], say: Any) -> list[Path]:
     import pandas as pd
 
     from tubetrack import charts as C
@@ -1013,9 +1051,8 @@ def _write_tube_pages(inputs: ReportInputs, out: Path, wanted: list[str], pages:
             img_links = None
             if tube in image_tubes:
                 stem = f"{page_stem(tube)}-{_SLUG.sub('_', focal)}-drift"
-                img_paths = _write_images(spec_text, out / "img" / "tubes" / stem)
-                written_images.extend(img_paths)
-                img_links = {p.suffix[1:]: f"../img/tubes/{p.name}" for p in img_paths}
+                image_jobs.append((spec_text, out / "img" / "tubes" / stem))
+                img_links = {"png": f"../img/tubes/{stem}.png", "svg": f"../img/tubes/{stem}.svg"}
             chart_html.append(f"<h3>{esc(focal.capitalize())} focal spot</h3>" + _chart_block(
                 chart_id, spec_text,
                 "Upper: filament current per mA station (binned medians and fitted trend per segment; dotted "

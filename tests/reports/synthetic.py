@@ -111,8 +111,9 @@ def make_results(n_tubes: int = 6, days: int = 400, seed: int = 7, hostile: bool
     forecast = pd.DataFrame(dict(month=fmonths, month_index=np.arange(1, 13), expected_replacements=exp_,
                                  lower_80=np.floor(exp_ * 0.4), upper_80=np.ceil(exp_ * 1.6),
                                  lower_95=np.floor(exp_ * 0.2), upper_95=np.ceil(exp_ * 2.1)))
-    budget = pd.DataFrame(dict(month=fmonths, expected_spend=exp_ * 90000, spend_lower=exp_ * 30000,
-                               spend_upper=exp_ * 180000, currency="EUR"))
+    budget = pd.DataFrame(dict(month=fmonths, expected_spend=exp_ * 90000, spend_lower_80=exp_ * 50000,
+                               spend_upper_80=exp_ * 140000, spend_lower_95=exp_ * 30000,
+                               spend_upper_95=exp_ * 180000, currency="EUR"))
     spares = pd.DataFrame(dict(model_label=["XT-0", "XT-1", "XT-2"], spares_needed=[3, 2, 1],
                                expected_demand=[1.8, 1.1, 0.4], service_level=0.95))
     uptime = pd.DataFrame(dict(system_id=system_ids, site=sites,

@@ -99,8 +99,17 @@ def spec_of(chart: Any, validate: bool = True) -> dict[str, Any]:
 
     from tubetrack.charts.theme import register_theme
 
+    # Datasets are plain JSON-ready records: validating them record by record against the
+    # schema costs seconds on big charts and checks nothing about the chart, so the structure is
+    # validated without them and the datasets are attached afterwards.
+    datasets = getattr(chart, "datasets", alt.Undefined)
+    bare = chart.copy(deep=False)
+    bare.datasets = alt.Undefined
     with alt.theme.enable(register_theme()):
-        return chart.to_dict(validate=validate)  # type: ignore[no-any-return]
+        spec: dict[str, Any] = bare.to_dict(validate=validate)
+    if datasets is not alt.Undefined:
+        spec["datasets"] = datasets
+    return spec
 
 
 def nice_max(value: float) -> float:

@@ -293,23 +293,30 @@ def forecast_chart(summary: pd.DataFrame) -> alt.LayerChart:
 
 
 def spend_chart(budget: pd.DataFrame, currency: str = "") -> alt.LayerChart:
-    """Expected tube spend per month with its interval.
+    """Expected tube spend per month with 80 % and 95 % intervals.
 
     Parameters
     ----------
     budget
-        month, expected_spend, spend_lower, spend_upper [currency units]; optional currency.
+        ``BudgetResult.summary`` rows of monthly periods: month (period start), expected_spend,
+        spend_lower_80, spend_upper_80, spend_lower_95, spend_upper_95 [currency units];
+        optional currency. Several currencies are drawn side by side as colours.
     currency
         Currency code for the axis title (e.g. ``EUR``); taken from the frame when empty.
     """
     import altair as alt
 
-    require(budget, ["month", "expected_spend", "spend_lower", "spend_upper"], "spend chart")
+    require(budget, ["month", "expected_spend", "spend_lower_80", "spend_upper_80", "spend_lower_95",
+                     "spend_upper_95"], "spend chart")
     frame = budget.copy()
-    if not currency and "currency" in frame.columns and frame["currency"].notna().any():
-        currency = str(frame["currency"].dropna().iloc[0])
+    if "currency" not in frame.columns:
+        frame["currency"] = currency or None
+    currencies = sorted(str(c) for c in frame["currency"].dropna().unique())
+    if not currency:
+        currency = currencies[0] if len(currencies) == 1 else "currency units"
     unit = currency or "currency units"
-    cols = ["month", "expected_spend", "spend_lower", "spend_upper"]
+    cols = ["month", "currency", "expected_spend", "spend_lower_80", "spend_upper_80", "spend_lower_95",
+            "spend_upper_95"]
     datasets = {"spend": dataset_records(frame, cols, "spend")}
     x = _month_x()
     y_title = f"Tube spend per month [{unit}]"
@@ -319,19 +326,26 @@ def spend_chart(budget: pd.DataFrame, currency: str = "") -> alt.LayerChart:
         .encode(
             x=x,
             y=alt.Y("expected_spend:Q", title=y_title, axis=alt.Axis(format="~s")),
+            xOffset=alt.XOffset("currency:N"),
             tooltip=[
                 alt.Tooltip("utcyearmonth(month):T", title="month [UTC]"),
+                alt.Tooltip("currency:N", title="currency"),
                 alt.Tooltip("expected_spend:Q", title=f"expected spend [{unit}]", format=",.0f"),
-                alt.Tooltip("spend_lower:Q", title=f"interval, low [{unit}]", format=",.0f"),
-                alt.Tooltip("spend_upper:Q", title=f"interval, high [{unit}]", format=",.0f"),
+                alt.Tooltip("spend_lower_80:Q", title=f"80 % interval, low [{unit}]", format=",.0f"),
+                alt.Tooltip("spend_upper_80:Q", title=f"80 % interval, high [{unit}]", format=",.0f"),
+                alt.Tooltip("spend_lower_95:Q", title=f"95 % interval, low [{unit}]", format=",.0f"),
+                alt.Tooltip("spend_upper_95:Q", title=f"95 % interval, high [{unit}]", format=",.0f"),
             ],
         )
     )
-    rule = alt.Chart(named("spend")).mark_rule(color=TARGET_COLOUR, strokeWidth=2).encode(
-        x=x, y=alt.Y("spend_lower:Q", title=y_title), y2="spend_upper:Q"
+    r95 = alt.Chart(named("spend")).mark_rule(color=OBSERVED_COLOUR, strokeWidth=1).encode(
+        x=x, xOffset=alt.XOffset("currency:N"), y=alt.Y("spend_lower_95:Q", title=y_title), y2="spend_upper_95:Q"
     )
-    return alt.layer(bars, rule).properties(
-        title="Expected tube spend per month with interval",
+    r80 = alt.Chart(named("spend")).mark_rule(color=TARGET_COLOUR, strokeWidth=4).encode(
+        x=x, xOffset=alt.XOffset("currency:N"), y=alt.Y("spend_lower_80:Q", title=y_title), y2="spend_upper_80:Q"
+    )
+    return alt.layer(bars, r95, r80).properties(
+        title="Expected tube spend per month (bars), 80 % (thick) and 95 % (thin) intervals",
         width=CHART_WIDTH,
         height=240,
         datasets=datasets,

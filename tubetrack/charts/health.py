@@ -73,8 +73,9 @@ def aggregate_drift(drift: pd.DataFrame, max_points: int = MAX_POINTS_PER_SERIES
     -------
     pandas.DataFrame
         tube_id, focal_spot, tube_current_ma, day (bin start), filament_current_a (median of the
-        normalised daily values in the bin) [A], filament_current_lo_a / _hi_a (min and max of
-        the daily values) [A], fitted_a (mean of the fitted trend) [A], segment (last in the
+        normalised daily values in the bin; median of bin medians when ``drift`` was binned
+        already) [A], filament_current_lo_a / _hi_a (min and max of the daily values; taken from
+        ``drift`` when it carries them) [A], fitted_a (mean of the fitted trend) [A], segment (last in the
         bin), n_days [days with data].
     """
     import numpy as np
@@ -100,10 +101,12 @@ def aggregate_drift(drift: pd.DataFrame, max_points: int = MAX_POINTS_PER_SERIES
         frame["n_days"] = 1
     span = (frame["day"].max() - frame["day"].min()) / pd.Timedelta(days=1)
     width = bin_days_for(float(span), max_points)
+    if "filament_current_lo_a" not in frame.columns:
+        frame["filament_current_lo_a"] = frame["filament_current_norm_a"]
+    if "filament_current_hi_a" not in frame.columns:
+        frame["filament_current_hi_a"] = frame["filament_current_norm_a"]
     if width == 1:
         frame["filament_current_a"] = frame["filament_current_norm_a"]
-        frame["filament_current_lo_a"] = frame["filament_current_norm_a"]
-        frame["filament_current_hi_a"] = frame["filament_current_norm_a"]
         return frame[
             [
                 "tube_id", "focal_spot", "tube_current_ma", "day", "filament_current_a",
@@ -118,8 +121,8 @@ def aggregate_drift(drift: pd.DataFrame, max_points: int = MAX_POINTS_PER_SERIES
     )
     out = grouped.agg(
         filament_current_a=("filament_current_norm_a", "median"),
-        filament_current_lo_a=("filament_current_norm_a", "min"),
-        filament_current_hi_a=("filament_current_norm_a", "max"),
+        filament_current_lo_a=("filament_current_lo_a", "min"),
+        filament_current_hi_a=("filament_current_hi_a", "max"),
         fitted_a=("fitted_a", "mean"),
         n_days=("n_days", "sum"),
     ).reset_index()
