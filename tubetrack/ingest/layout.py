@@ -202,7 +202,7 @@ KINDS: dict[str, Kind] = {
 KIND_PREFIXES = tuple(KINDS)
 
 #: Files the walker never reads (ground truth of the demo, documentation).
-SKIP_NAME_PREFIXES = ("truth", "readme", "license", ".")
+SKIP_NAME_PREFIXES = ("truth", "readme", "license", ".", "dicom-devices")
 LOG_SUFFIXES = (".csv", ".tsv", ".txt", ".log", ".dat", ".jsonl", ".ndjson", ".json", ".parquet")
 
 
