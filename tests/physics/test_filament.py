@@ -254,3 +254,18 @@ def test_forward_chain_by_hand_at_2700_k():
     assert float(
         filament_current_for_tube_current_a(s, i_tube_ma, 80.0)
     ) == pytest.approx(i_f, rel=1e-3)
+
+
+def test_stepped_selector_resistors_deliver_their_stations():
+    # Round trip through the circuit: the resistor chosen for each mA station, put back in the
+    # circuit at the same mains, gives that station's tube current; more mA -> less resistance.
+    from tubetrack.physics import series_resistance_for_tube_current_ohm
+
+    s = default_filament_spec("large")
+    stations = np.array([100.0, 200.0, 400.0, 600.0])
+    rs = series_resistance_for_tube_current_ohm(s, stations, 80.0, 230.0)
+    assert np.all(np.diff(rs) < 0) and np.all(rs > 0)
+    op = filament_circuit_operating_point(s, 230.0, 80.0, series_resistance_ohm=rs)
+    assert np.allclose(op["tube_current_ma"], stations, rtol=1e-3)
+    # a station needing more than the mains can give has no resistor
+    assert np.isnan(series_resistance_for_tube_current_ohm(s, 600.0, 80.0, 150.0))

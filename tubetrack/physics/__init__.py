@@ -24,6 +24,7 @@ from tubetrack.physics.circuit import (
     mains_sensitivity,
     primary_voltage_after_series_drop_v,
     series_resistance_for_filament_voltage_ohm,
+    series_resistance_for_tube_current_ohm,
     transformer_primary_current_a,
     transformer_secondary_voltage_v,
 )
@@ -127,6 +128,7 @@ __all__ = [
     "saturation_current_for_tube_current_a",
     "schottky_lowering_ev",
     "series_resistance_for_filament_voltage_ohm",
+    "series_resistance_for_tube_current_ohm",
     "simulate_filament_history",
     "spec_for_rows",
     "thinning_rate_m_s",

@@ -41,6 +41,7 @@ __all__ = [
     "transformer_primary_current_a",
     "primary_voltage_after_series_drop_v",
     "series_resistance_for_filament_voltage_ohm",
+    "series_resistance_for_tube_current_ohm",
     "filament_circuit_operating_point",
     "mains_sensitivity",
 ]
@@ -82,6 +83,35 @@ def series_resistance_for_filament_voltage_ohm(
     with np.errstate(divide="ignore", invalid="ignore"):
         r = drop / (_asarray(filament_current_a) / n)
     return _out(np.where(drop >= 0, r, np.nan))
+
+
+def series_resistance_for_tube_current_ohm(
+    spec: FilamentSpec,
+    tube_current_ma: ArrayLike,
+    tube_voltage_kv: ArrayLike,
+    mains_v: ArrayLike,
+    *,
+    turns_ratio: float | None = None,
+    diameter_ratio: ArrayLike = 1.0,
+) -> Any:
+    """Primary series resistance that makes the filament deliver a tube current [ohm].
+
+    For a stepped selector this is the resistor of each mA station; for a continuous one, the
+    setting as a function of mA. Ideal transformer; NaN when the station is not deliverable or
+    the mains cannot reach the needed primary voltage.
+    """
+    from tubetrack.physics.filament import filament_temperature_for_tube_current_k
+
+    n = float(spec.turns_ratio if turns_ratio is None else turns_ratio)
+    r = _asarray(diameter_ratio)
+    t = filament_temperature_for_tube_current_k(
+        spec, tube_current_ma, tube_voltage_kv, r
+    )
+    d = spec.diameter_m * r
+    heat = (spec.radiating_area_fraction, spec.end_loss_fraction)
+    v_f = filament_voltage_at_temperature_v(t, d, spec.length_m, *heat)
+    i_f = filament_current_at_temperature_a(t, d, *heat)
+    return series_resistance_for_filament_voltage_ohm(mains_v, v_f, i_f, n)
 
 
 def _solve_temperature(
