@@ -6,6 +6,8 @@ imported inside the command bodies so that ``tubetrack --help`` starts fast.
 
 from __future__ import annotations
 
+import os
+from pathlib import Path
 from typing import Annotated
 
 import typer
@@ -36,6 +38,15 @@ def _version_callback(value: bool) -> None:
 
 @app.callback()
 def main(
+    db: Annotated[
+        Path | None,
+        typer.Option(
+            "--db",
+            help="DuckDB store for every command (same as each command's --db; sets "
+            "TUBETRACK_DB). Default: $TUBETRACK_DB or ./tubetrack.duckdb.",
+            show_default=False,
+        ),
+    ] = None,
     version: Annotated[
         bool,
         typer.Option(
@@ -44,6 +55,10 @@ def main(
     ] = False,
 ) -> None:
     """tubetrack command-line interface."""
+    if db is not None:
+        # Sub-commands parse their options after this callback, so their --db (envvar
+        # TUBETRACK_DB) picks the global choice up unless given again.
+        os.environ["TUBETRACK_DB"] = str(db)
 
 
 from tubetrack.cli import (  # noqa: E402  (registration order = help order)
