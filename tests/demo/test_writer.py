@@ -5,7 +5,7 @@ from __future__ import annotations
 import gzip
 import io
 import json
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
@@ -47,7 +47,7 @@ def _foreign_to_utc(frame: pd.DataFrame) -> list[datetime | None]:
         if prev is not None and local <= prev and local.date() == prev.date():
             second_pass = True  # the clock went back: second pass through the repeated hour
         aware = local.replace(tzinfo=BERLIN, fold=1 if second_pass else 0)
-        utc = aware.astimezone(timezone.utc)
+        utc = aware.astimezone(UTC)
         # round trip: a non-existent (spring gap) local time does not come back unchanged
         back = utc.astimezone(BERLIN).replace(tzinfo=None)
         out.append(utc.replace(tzinfo=None) if back == local else None)
@@ -140,7 +140,7 @@ def test_repeated_autumn_hour_present_and_resolved(small_fleet, tmp_path):
 def test_spring_gap_bad_row_does_not_exist_locally():
     # Source: IANA tz database: on 2024-03-31 Europe/Berlin jumps from 02:00 CET to 03:00 CEST
     local = datetime(2024, 3, 31, 2, 30)
-    back = local.replace(tzinfo=BERLIN).astimezone(timezone.utc).astimezone(BERLIN).replace(tzinfo=None)
+    back = local.replace(tzinfo=BERLIN).astimezone(UTC).astimezone(BERLIN).replace(tzinfo=None)
     assert back != local
     assert any(b.kind == "foreign" and "02:30" in b.value for b in BAD_ROWS)
 

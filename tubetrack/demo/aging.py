@@ -59,7 +59,7 @@ _NAMES = (
 )
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _ph(name: str) -> Any:
     """A contract-D name from :mod:`tubetrack.physics` (or its submodules while the package's
     ``__init__`` does not re-export it yet)."""
@@ -191,7 +191,6 @@ def wear_table(
     prog_weight
         Hot time per program (any scale) used to weight the shape g(d) [s].
     """
-    n_p = len(prog_ma)
     ma = np.repeat(prog_ma[:, None], len(D_GRID), axis=1)
     kv = np.repeat(prog_kv[:, None], len(D_GRID), axis=1)
     dd = np.broadcast_to(D_GRID[None, :], ma.shape)
@@ -213,7 +212,6 @@ def wear_table(
     log_g = np.interp(loss, 1.0 - D_GRID, np.log(np.maximum(g, 1e-9)))
     inv = np.exp(-log_g)
     g_cum = np.concatenate([[0.0], np.cumsum(0.5 * (inv[1:] + inv[:-1]) * np.diff(loss))])
-    del n_p
     return WearTable(
         rate0_per_s=rate0,
         loss_grid=loss,

@@ -227,13 +227,10 @@ def _make_downtime(
 def _drop_overlaps(frame: pd.DataFrame) -> pd.DataFrame:
     """Drop downtime records that start before the previous one of the same system ended."""
     frame = frame.sort_values(["sys", "start_ms"], kind="stable").reset_index(drop=True)
-    prev_end = frame.groupby("sys")["end_ms"].shift(1).cummax() if False else None
-    del prev_end
-    ok = np.ones(len(frame), dtype=bool)
-    # running max of end within system (vectorised via groupby cummax of shifted ends)
+    # running max of the previous ends within the system (grouped shift + cummax)
     shifted = frame.groupby("sys")["end_ms"].shift(1)
     run_max = shifted.groupby(frame["sys"]).cummax()
-    ok &= ~(run_max.notna().to_numpy() & (frame["start_ms"].to_numpy() < run_max.fillna(0).to_numpy()))
+    ok = ~(run_max.notna().to_numpy() & (frame["start_ms"].to_numpy() < run_max.fillna(0).to_numpy()))
     return frame[ok].reset_index(drop=True)
 
 
@@ -593,7 +590,7 @@ def _simulate_tubes(
             loss: dict[str, np.ndarray] = {}
             cross: dict[str, int] = {}
             for f in ("small", "large"):
-                tab, fi = tables[f], fil[f]
+                tab = tables[f]
                 inc = tab.rate0_per_s[p_t] * hot_t * accel
                 g0 = aging.cum_from_loss(tab, pre_loss[f])
                 loss[f] = aging.loss_from_cum(tab, g0 + np.cumsum(inc))
