@@ -272,3 +272,16 @@ def test_station_beyond_nominal_space_charge_limit_still_inverts_with_warning():
             np.array([0.93, 0.93]), s, np.array([600.0, 200.0]), 50.0, 0.002
         )
     assert np.all(np.isfinite(r)) and abs(r[0] - r[1]) < 2e-3
+
+
+def test_inversion_broadcasts_2d_inputs_and_row_specs():
+    s = default_filament_spec("small")
+    q = np.array([[0.95, 0.97], [0.99, 1.0]])
+    r, se = diameter_ratio_from_current_ratio(
+        q, s, np.array([[100.0], [200.0]]), 80.0, 0.002
+    )
+    assert r.shape == (2, 2) and se.shape == (2, 2)
+    assert r[1, 1] == pytest.approx(1.0, abs=1e-9) and r[0, 0] < r[0, 1]
+    rows = s.replace(current_scale=np.array([1.0, 1.1, 0.9]))  # gain cancels in a ratio
+    r3, _ = diameter_ratio_from_current_ratio(0.95, rows, 200.0, 80.0)
+    assert r3.shape == (3,) and np.allclose(r3, r3[0], atol=1e-12)

@@ -200,6 +200,39 @@ def _solve_ratio(spec: FilamentSpec, q: Any, ma: Any, kv: Any) -> tuple[Any, Any
     return r, n_eff
 
 
+_SPEC_ARRAY_FIELDS = (
+    "diameter_m",
+    "length_m",
+    "emitting_area_fraction",
+    "radiating_area_fraction",
+    "end_loss_fraction",
+    "perveance_a_v15",
+    "blend_sharpness",
+    "work_function_ev",
+    "richardson_a_m2_k2",
+    "emitting_area_diameter_exponent",
+    "hot_spot_factor",
+    "turns_ratio",
+    "current_scale",
+)
+
+
+def _result_shape(spec: FilamentSpec, *args: Any) -> tuple[int, ...]:
+    shapes = [np.shape(a) for a in args if a is not None]
+    shapes += [np.shape(getattr(spec, f)) for f in _SPEC_ARRAY_FIELDS]
+    return tuple(np.broadcast_shapes(*shapes))
+
+
+def _ravel_spec(spec: FilamentSpec, shape: tuple[int, ...]) -> FilamentSpec:
+    """Spec with array fields broadcast to ``shape`` and flattened (scalars stay scalars)."""
+    changes = {
+        f: np.broadcast_to(np.asarray(getattr(spec, f), dtype=float), shape).ravel()
+        for f in _SPEC_ARRAY_FIELDS
+        if np.ndim(getattr(spec, f)) > 0
+    }
+    return spec.replace(**changes) if changes else spec
+
+
 def invert_current_ratio(
     current_ratio: ArrayLike,
     spec: FilamentSpec,
@@ -230,16 +263,19 @@ def invert_current_ratio(
     """
     import pandas as pd
 
-    q, ma, kv = np.broadcast_arrays(
-        np.atleast_1d(_asarray(current_ratio)),
-        np.atleast_1d(_asarray(tube_current_ma)),
-        np.atleast_1d(_asarray(tube_voltage_kv)),
+    shape = _result_shape(
+        spec, current_ratio, tube_current_ma, tube_voltage_kv, current_ratio_se
+    )
+    q, ma, kv = (
+        np.broadcast_to(_asarray(x), shape).ravel()
+        for x in (current_ratio, tube_current_ma, tube_voltage_kv)
     )
     se_q = (
         np.zeros_like(q)
         if current_ratio_se is None
-        else np.broadcast_to(_asarray(current_ratio_se), q.shape)
+        else np.broadcast_to(_asarray(current_ratio_se), shape).ravel()
     )
+    spec = _ravel_spec(spec, shape)
     r, n = _solve_ratio(spec, q, ma, kv)
     alt_a = np.where(np.asarray(spec.emitting_area_diameter_exponent) != 0, 0.0, 1.0)
     r_a, n_a = _solve_ratio(
@@ -307,22 +343,13 @@ def diameter_ratio_from_current_ratio(
     frame = invert_current_ratio(
         current_ratio, spec, tube_current_ma, tube_voltage_kv, current_ratio_se
     )
-    shape = np.broadcast_shapes(
-        np.shape(current_ratio),
-        np.shape(tube_current_ma),
-        np.shape(tube_voltage_kv),
-        () if current_ratio_se is None else np.shape(current_ratio_se),
+    shape = _result_shape(
+        spec, current_ratio, tube_current_ma, tube_voltage_kv, current_ratio_se
     )
-    r = (
-        frame["diameter_ratio"].to_numpy().reshape(shape)
-        if shape
-        else frame["diameter_ratio"].to_numpy()[0]
-    )
-    se = (
-        frame["diameter_ratio_se"].to_numpy().reshape(shape)
-        if shape
-        else frame["diameter_ratio_se"].to_numpy()[0]
-    )
+    r = frame["diameter_ratio"].to_numpy().reshape(shape)
+    se = frame["diameter_ratio_se"].to_numpy().reshape(shape)
+    if r.ndim == 0:
+        return r[()], se[()]
     return r, se
 
 
