@@ -237,3 +237,21 @@ def test_visit_order_ranks_by_risk_times_impact():
     assert v.loc["C", "site_rank"] == 2 and v.loc["A", "site_rank"] == 1
     assert "filament end of life 25.0 %" in v.loc["B", "reason"]
     assert "no uptime target" in v.loc["A", "reason"]
+
+
+def test_system_without_logs_is_truncated_at_the_fleet_log_start():
+    tubes = pd.DataFrame(
+        {
+            "tube_id": ["A1", "B1"],
+            "system_id": ["A", "B"],
+            "installed_at_utc": ["2019-01-01", "2019-01-01"],
+            "removed_at_utc": [None, None],
+        }
+    )
+    starts = pd.DataFrame(
+        {"system_id": ["A"], "log_start_utc": [pd.Timestamp("2022-01-01")]}
+    )
+    with pytest.warns(UserWarning, match="no logged exposures"):
+        life = build_life_data(tubes, as_of=datetime(2023, 1, 1), log_start=starts)
+    f = life.frame.set_index("tube_id")
+    assert f.loc["B1", "entry_days"] == f.loc["A1", "entry_days"] == 1096.0

@@ -294,7 +294,8 @@ def build_life_data(
         Output of :func:`workload_by_tube` (optional; workload clocks are NaN without it).
     log_start
         Output of :func:`log_start_by_system`: tubes installed before their system's first log
-        are left-truncated there. ``None``: no truncation.
+        are left-truncated there (systems without logs: the fleet's first log). ``None``: no
+        truncation.
 
     Raises
     ------
@@ -357,6 +358,19 @@ def build_life_data(
         ls = log_start[["system_id", "log_start_utc"]]
         t = t.merge(ls, on="system_id", how="left")
         t["log_start_utc"] = pd.to_datetime(t["log_start_utc"])
+        # A system without any logged exposure: observation of the fleet began with the first
+        # log anywhere, so its older tubes are truncated there too.
+        no_log = t["log_start_utc"].isna()
+        if no_log.any():
+            fleet_start = pd.to_datetime(ls["log_start_utc"]).min()
+            t.loc[no_log, "log_start_utc"] = fleet_start
+            warnings.warn(
+                f"{t.loc[no_log, 'system_id'].nunique()} system(s) have no logged exposures "
+                f"(e.g. {t.loc[no_log, 'system_id'].iloc[0]}); their tubes enter observation at "
+                f"the fleet's first log ({fleet_start:%Y-%m-%d}).",
+                TubetrackWarning,
+                stacklevel=2,
+            )
     else:
         t["log_start_utc"] = pd.NaT
     pre = (t["log_start_utc"] - t["installed_at_utc"]).dt.total_seconds() / _DAY_S
