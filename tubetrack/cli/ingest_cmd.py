@@ -24,7 +24,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from tubetrack.ingest.report import FileReport
 
 
-class KindChoice(str, Enum):
+class KindChoice(str, Enum):  # noqa: UP042  (same pattern as OutputFormat)
     """Table kinds a log file can feed."""
 
     exposures = "exposures"
