@@ -192,7 +192,7 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
         Step(
             "ingest",
             "`tubetrack ingest` open layout (full)",
-            lambda: [*tt, "--db", str(ingest_db), "ingest", str(ds.open_dir), *quiet_flag],
+            lambda: [*tt, "ingest", str(ds.open_dir), "--db", str(ingest_db), *quiet_flag],
             floor="raw_load",
             target=Target("ratio", 1.3, 1024, "<= 1.3x floor, peak <= 1 GiB"),
             prepare=lambda: _rm(ingest_db),
@@ -203,7 +203,7 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
         Step(
             "incremental",
             "`tubetrack ingest` one more day into full store",
-            lambda: [*tt, "--db", str(inc_db), "ingest", str(ds.increment_dir), *quiet_flag],
+            lambda: [*tt, "ingest", str(ds.increment_dir), "--db", str(inc_db), *quiet_flag],
             floor="ingest",
             target=Target("ratio", 0.05, None, "<= 5 % of full ingest"),
             prepare=prep_incr,
@@ -220,7 +220,7 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
         Step(
             "ingest_foreign",
             "`tubetrack ingest` foreign layout via profile",
-            lambda: [*tt, "--db", str(foreign_db), "ingest", str(ds.foreign_dir), *quiet_flag],
+            lambda: [*tt, "ingest", str(ds.foreign_dir), "--db", str(foreign_db), *quiet_flag],
             floor="raw_load_foreign",
             prepare=lambda: _rm(foreign_db),
             available=lambda: cli_missing("ingest") or (None if (ds.foreign_dir / "profiles").exists() else "harrowgate profile not present yet"),
@@ -229,7 +229,7 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
         Step(
             "tubes",
             "`tubetrack tubes` full health analysis",
-            lambda: [*tt, "--db", str(full_db), "tubes", "--format", "csv"],
+            lambda: [*tt, "tubes", "--db", str(full_db), "--format", "csv"],
             floor="raw_load",
             target=Target("ratio", 5.0, 2048, "<= 5x floor, peak <= 2 GiB"),
             available=lambda: cli_missing("tubes") or (None if full_db.exists() else "no full store (ingest failed)"),
@@ -237,14 +237,14 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
         Step(
             "fleet_forecast",
             "`tubetrack fleet forecast`",
-            lambda: [*tt, "--db", str(full_db), "fleet", "forecast", "--format", "csv"],
+            lambda: [*tt, "fleet", "forecast", "--db", str(full_db), "--format", "csv"],
             floor="raw_load",
             available=lambda: cli_missing("fleet", "forecast") or (None if full_db.exists() else "no full store"),
         ),
         Step(
             "report",
             "`tubetrack report` whole fleet",
-            lambda: [*tt, "--db", str(full_db), "report", "--out", str(report_dir)],
+            lambda: [*tt, "report", "--db", str(full_db), "--out", str(report_dir)],
             target=Target("abs_s", 30.0, None, "<= 30 s"),
             prepare=lambda: _rm(report_dir),
             available=lambda: cli_missing("report") or (None if full_db.exists() else "no full store"),
@@ -252,15 +252,15 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
         Step(
             "dicom",
             "`tubetrack ingest` 10,000 DICOM headers",
-            lambda: [*tt, "--db", str(dicom_db), "ingest", str(dicom_dir), *quiet_flag],
+            lambda: [*tt, "ingest", str(dicom_dir), "--db", str(dicom_db), *quiet_flag],
             prepare=prep_dicom,
             available=lambda: cli_missing("ingest") or module_missing("tubetrack.ingest.dicom_synth", "write_dicom_workload"),
             items=10_000,
         ),
         Step(
             "export_lake",
-            "`tubetrack export-lake` (Parquet, system x month)",
-            lambda: [*tt, "--db", str(full_db), "export-lake", "--out", str(lake), *quiet_flag],
+            "`tubetrack export-lake` (Parquet by month)",
+            lambda: [*tt, "export-lake", "--db", str(full_db), "--out", str(lake), *quiet_flag],
             floor="raw_load",
             prepare=lambda: _rm(lake),
             available=lambda: cli_missing("export-lake") or (None if full_db.exists() else "no full store"),
