@@ -285,3 +285,46 @@ def test_inversion_broadcasts_2d_inputs_and_row_specs():
     rows = s.replace(current_scale=np.array([1.0, 1.1, 0.9]))  # gain cancels in a ratio
     r3, _ = diameter_ratio_from_current_ratio(0.95, rows, 200.0, 80.0)
     assert r3.shape == (3,) and np.allclose(r3, r3[0], atol=1e-12)
+
+
+@settings(max_examples=30, deadline=None)
+@given(
+    st.floats(0.88, 1.0),
+    st.sampled_from([100.0, 200.0, 300.0]),
+    st.floats(60.0, 110.0),
+    st.floats(0.3, 0.9),
+)
+def test_resistance_ratio_inversion_recovers_diameter(r, ma, kv, area_fraction):
+    # Forward: hot resistance V_f / I_f at the station for the thinned and the new wire, from the
+    # operating point of a filament unlike the nominal one; inverse with the nominal spec.
+    from tubetrack.physics import diameter_ratio_from_resistance_ratio
+
+    true = default_filament_spec("small").replace(
+        emitting_area_fraction=area_fraction, current_scale=1.2
+    )
+    op = filament_operating_point(true, ma, kv, np.array([1.0, r]))
+    res = op["filament_resistance_ohm"].to_numpy()
+    r_hat, se = diameter_ratio_from_resistance_ratio(
+        res[1] / res[0], default_filament_spec("small"), ma, kv
+    )
+    assert abs(float(r_hat) - r) <= 2.0 * float(se) + 1e-9
+    same, _ = diameter_ratio_from_resistance_ratio(
+        res[1] / res[0],
+        default_filament_spec("small").replace(emitting_area_fraction=area_fraction),
+        ma,
+        kv,
+    )
+    assert float(same) == pytest.approx(r, abs=1e-6)
+
+
+def test_resistance_rises_about_11_pct_and_exponent_about_minus_2():
+    frame = invert_current_ratio(
+        1.11, default_filament_spec("small"), 200.0, 80.0, 0.002, signal="resistance"
+    )
+    # +11 % hot resistance <-> about 10 % mass loss (REFERENCES.md [C, model]; 1 - sqrt(0.9) = 5.13 %)
+    assert frame["diameter_loss_pct"].iloc[0] == pytest.approx(5.13, abs=0.3)
+    assert -2.1 < frame["exponent"].iloc[0] < -2.0
+    with pytest.raises(InputError, match="signal"):
+        invert_current_ratio(
+            1.0, default_filament_spec("small"), 200.0, 80.0, signal="power"
+        )

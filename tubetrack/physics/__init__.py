@@ -50,6 +50,7 @@ from tubetrack.physics.filament import (
 from tubetrack.physics.inversion import (
     current_ratio_for_diameter_ratio,
     diameter_ratio_from_current_ratio,
+    diameter_ratio_from_resistance_ratio,
     fit_baseline,
     fit_baseline_groups,
     inversion_exponent,
@@ -101,6 +102,7 @@ __all__ = [
     "diameter_loss_from_mass_loss",
     "diameter_loss_rate_per_s",
     "diameter_ratio_from_current_ratio",
+    "diameter_ratio_from_resistance_ratio",
     "end_of_life_reached",
     "exposure_diameter_loss",
     "filament_circuit_operating_point",

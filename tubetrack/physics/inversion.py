@@ -50,6 +50,7 @@ __all__ = [
     "current_ratio_for_diameter_ratio",
     "inversion_exponent",
     "diameter_ratio_from_current_ratio",
+    "diameter_ratio_from_resistance_ratio",
     "invert_current_ratio",
     "fit_baseline",
     "fit_baseline_groups",
@@ -107,6 +108,29 @@ def _h_current(t_k: Any) -> Any:
     return np.interp(t_k, thermal._TG, thermal._H_I, left=np.nan, right=np.nan)
 
 
+def _h_voltage(t_k: Any) -> Any:
+    """sqrt(W rho) at T (thermal eq. 2 without geometry)."""
+    from tubetrack.physics import thermal
+
+    return np.interp(t_k, thermal._TG, thermal._H_V, left=np.nan, right=np.nan)
+
+
+def _h_resistance(t_k: Any) -> Any:
+    """rho(T): the hot resistance without geometry."""
+    from tubetrack.physics import thermal
+
+    return np.interp(t_k, thermal._TG, thermal._RHO, left=np.nan, right=np.nan)
+
+
+#: Logged signal -> (power of r from the geometry, temperature factor h(T)). At a fixed station:
+#: I_f ~ r^1.5 sqrt(W/rho), V_f ~ r^-0.5 sqrt(W rho), R_hot = V_f / I_f ~ r^-2 rho (thermal.py).
+_SIGNALS = {
+    "current": (1.5, _h_current),
+    "voltage": (-0.5, _h_voltage),
+    "resistance": (-2.0, _h_resistance),
+}
+
+
 def _fallback_temperature(spec: FilamentSpec, t0: Any, ma: Any, kv: Any) -> Any:
     """Baseline temperature where the spec cannot deliver the station (above P V^1.5).
 
@@ -150,13 +174,17 @@ def _fallback_temperature(spec: FilamentSpec, t0: Any, ma: Any, kv: Any) -> Any:
     return np.where(bad, t_fb, t0)
 
 
-def _solve_ratio(spec: FilamentSpec, q: Any, ma: Any, kv: Any) -> tuple[Any, Any]:
-    """Solve q = I_f(r)/I_f(1) for r (vectorised, fast path of the full forward model).
+def _solve_ratio(
+    spec: FilamentSpec, q: Any, ma: Any, kv: Any, signal: str = "current"
+) -> tuple[Any, Any]:
+    """Solve q = S(r)/S(1) for r (vectorised, fast path of the full forward model).
 
-    With the baseline temperature T0 (full forward model, once), q(r) = r^1.5 h(T_r) / h(T0)
-    where J(T_r) = J(T0) r^-a and h = sqrt(W/rho): geometry, end losses and sensor gain cancel.
-    Fixed-slope Newton in ln r (slope from a central difference at r = 1), 6 steps.
+    With the baseline temperature T0 (full forward model, once), q(r) = r^k h(T_r) / h(T0)
+    where J(T_r) = J(T0) r^-a; for the filament current k = 1.5 and h = sqrt(W/rho) (geometry,
+    end losses and sensor gain cancel), see :data:`_SIGNALS` for voltage and resistance.
+    Fixed-slope Newton in ln r (slope from a central difference at r = 1), then an exact polish.
     """
+    power, h_of = _SIGNALS[signal]
     t0 = _asarray(filament_temperature_for_tube_current_k(spec, ma, kv, 1.0))
     t0 = _fallback_temperature(spec, t0, ma, kv)
     a = spec.emitting_area_diameter_exponent
@@ -164,7 +192,7 @@ def _solve_ratio(spec: FilamentSpec, q: Any, ma: Any, kv: Any) -> tuple[Any, Any
     # ln h(T) near T0 as a quadratic from three grid lookups (h is smooth; |T - T0| < 50 K for
     # r > 0.7, where the quadratic's error in ln q is < 1e-6).
     with np.errstate(divide="ignore", invalid="ignore"):
-        lh0, lhp, lhm = (np.log(_h_current(t0 + dt)) for dt in (0.0, _DT_K, -_DT_K))
+        lh0, lhp, lhm = (np.log(h_of(t0 + dt)) for dt in (0.0, _DT_K, -_DT_K))
     s1 = (lhp - lhm) / (2 * _DT_K)
     s2 = (lhp - 2 * lh0 + lhm) / _DT_K**2
     c0 = 2.0 * np.log(t0) - b / t0
@@ -180,10 +208,10 @@ def _solve_ratio(spec: FilamentSpec, q: Any, ma: Any, kv: Any) -> tuple[Any, Any
 
     def ln_q_fast(ln_r: Any) -> Any:
         dt = temperature(ln_r) - t0
-        return 1.5 * ln_r + dt * (s1 + 0.5 * s2 * dt)
+        return power * ln_r + dt * (s1 + 0.5 * s2 * dt)
 
     def ln_q_exact(ln_r: Any) -> Any:
-        return 1.5 * ln_r + np.log(_h_current(temperature(ln_r))) - lh0
+        return power * ln_r + np.log(h_of(temperature(ln_r))) - lh0
 
     with np.errstate(divide="ignore", invalid="ignore"):
         n0 = (ln_q_fast(np.full_like(t0, _H)) - ln_q_fast(np.full_like(t0, -_H))) / (
@@ -239,6 +267,8 @@ def invert_current_ratio(
     tube_current_ma: ArrayLike,
     tube_voltage_kv: ArrayLike,
     current_ratio_se: ArrayLike | None = None,
+    *,
+    signal: str = "current",
 ) -> Any:
     """Diameter ratio from filament-current ratios, with the full uncertainty breakdown.
 
@@ -253,6 +283,10 @@ def invert_current_ratio(
         The station [mA] and kV [kV] the ratio refers to.
     current_ratio_se : array_like, optional
         Standard error of the ratio [1]; None means 0 (model uncertainty only).
+    signal : {"current", "resistance", "voltage"}, default "current"
+        Which logged quantity the ratio is of: filament current (q ~ r^1.42), hot resistance
+        V_f/I_f (q ~ r^-2.06, needs the filament voltage; gains of both sensors cancel) or
+        filament voltage (q ~ r^-0.63).
 
     Returns
     -------
@@ -275,19 +309,25 @@ def invert_current_ratio(
         if current_ratio_se is None
         else np.broadcast_to(_asarray(current_ratio_se), shape).ravel()
     )
+    if signal not in _SIGNALS:
+        raise InputError(
+            f"signal is {signal!r}; expected one of {sorted(_SIGNALS)} (the logged quantity "
+            "the ratio is of)."
+        )
     spec = _ravel_spec(spec, shape)
-    r, n = _solve_ratio(spec, q, ma, kv)
+    r, n = _solve_ratio(spec, q, ma, kv, signal)
     alt_a = np.where(np.asarray(spec.emitting_area_diameter_exponent) != 0, 0.0, 1.0)
     r_a, n_a = _solve_ratio(
-        spec.replace(emitting_area_diameter_exponent=alt_a), q, ma, kv
+        spec.replace(emitting_area_diameter_exponent=alt_a), q, ma, kv, signal
     )
     hi_f = np.minimum(1.0, np.asarray(spec.emitting_area_fraction) * 2.0)
-    r_hi, _ = _solve_ratio(spec.replace(emitting_area_fraction=hi_f), q, ma, kv)
+    r_hi, _ = _solve_ratio(spec.replace(emitting_area_fraction=hi_f), q, ma, kv, signal)
     r_lo, _ = _solve_ratio(
         spec.replace(emitting_area_fraction=spec.emitting_area_fraction / 2.0),
         q,
         ma,
         kv,
+        signal,
     )
     # Model error: the full spread between the emitting-area assumptions (a = 1 vs a = 0: either
     # may hold, so one standard error spans the whole gap) and half the spread for T0 (area x2, /2).
@@ -295,7 +335,7 @@ def invert_current_ratio(
         (r - r_a) ** 2 + (0.5 * np.maximum(np.abs(r - r_hi), np.abs(r - r_lo))) ** 2
     )
     with np.errstate(divide="ignore", invalid="ignore"):
-        se_meas = r * se_q / (q * n)
+        se_meas = r * se_q / (q * np.abs(n))
     se = np.sqrt(se_meas**2 + se_model**2)
     return pd.DataFrame(
         {
@@ -345,6 +385,37 @@ def diameter_ratio_from_current_ratio(
     )
     shape = _result_shape(
         spec, current_ratio, tube_current_ma, tube_voltage_kv, current_ratio_se
+    )
+    r = frame["diameter_ratio"].to_numpy().reshape(shape)
+    se = frame["diameter_ratio_se"].to_numpy().reshape(shape)
+    if r.ndim == 0:
+        return r[()], se[()]
+    return r, se
+
+
+def diameter_ratio_from_resistance_ratio(
+    resistance_ratio: ArrayLike,
+    spec: FilamentSpec,
+    tube_current_ma: ArrayLike,
+    tube_voltage_kv: ArrayLike,
+    resistance_ratio_se: ArrayLike | None = None,
+) -> tuple[Any, Any]:
+    """Estimate d/d0 from the hot-resistance ratio (V_f/I_f) / baseline at fixed station and kV.
+
+    A second, independent reading of the same wire when the log carries the filament voltage:
+    R_hot ~ rho(T) / d^2, so q = r^-2 rho(T_r)/rho(T0) ~ r^-2.06 (+11 % at 10 % mass loss).
+    Returns (diameter_ratio, diameter_ratio_se) like :func:`diameter_ratio_from_current_ratio`.
+    """
+    frame = invert_current_ratio(
+        resistance_ratio,
+        spec,
+        tube_current_ma,
+        tube_voltage_kv,
+        resistance_ratio_se,
+        signal="resistance",
+    )
+    shape = _result_shape(
+        spec, resistance_ratio, tube_current_ma, tube_voltage_kv, resistance_ratio_se
     )
     r = frame["diameter_ratio"].to_numpy().reshape(shape)
     se = frame["diameter_ratio_se"].to_numpy().reshape(shape)
