@@ -263,15 +263,18 @@ def _text(value: Any) -> str | None:
     """A DICOM element value as text (first value of a multi-valued one), None when empty."""
     if value is None:
         return None
-    try:
-        from pydicom.multival import MultiValue
-
-        if isinstance(value, MultiValue | list | tuple):
-            if len(value) == 0:
-                return None
-            value = value[0]
-    except ImportError:  # pragma: no cover
-        pass
+    if isinstance(value, str):
+        return value.strip() or None
+    if (
+        hasattr(value, "__len__")
+        and hasattr(value, "__getitem__")
+        and not hasattr(value, "keys")
+    ):
+        if (
+            len(value) == 0
+        ):  # a multi-valued element (MultiValue, list): its first value
+            return None
+        value = value[0]
     text = str(value).strip()
     return text or None
 
@@ -292,45 +295,63 @@ def _dt_text(ds: Any) -> str | None:
     return None
 
 
+# Tags of the SR content tree, read by number (much faster than keyword look-ups).
+_T_CONTENT_SEQ = 0x0040A730
+_T_VALUE_TYPE = 0x0040A040
+_T_CONCEPT = 0x0040A043
+_T_CODE_VALUE = 0x00080100
+_T_DATETIME = 0x0040A120
+_T_UID = 0x0040A124
+_T_MEASURED = 0x0040A300
+_T_UNITS = 0x004008EA
+_T_NUMERIC = 0x0040A30A
+
+
+def _v(item: Any, tag: int) -> Any:
+    """Value of element ``tag`` in ``item`` (None when absent)."""
+    el = item.get(tag)
+    return None if el is None else el.value
+
+
 def _code_value(item: Any) -> str | None:
-    seq = item.get("ConceptNameCodeSequence")
+    seq = _v(item, _T_CONCEPT)
     if not seq:
         return None
-    return _text(seq[0].get("CodeValue"))
+    return _text(_v(seq[0], _T_CODE_VALUE))
 
 
 def _walk_event(item: Any, found: dict[str, Any]) -> None:
     """Collect the first value of each concept we want under one irradiation-event container."""
-    for child in item.get("ContentSequence") or []:
-        code = _code_value(child)
-        vt = _text(child.get("ValueType"))
+    for child in _v(item, _T_CONTENT_SEQ) or []:
+        vt = _text(_v(child, _T_VALUE_TYPE))
         if vt == "CONTAINER":
             _walk_event(child, found)
             continue
+        code = _code_value(child)
         if code is None or code in found:
             continue
         if code == _CODE_DT_STARTED and vt == "DATETIME":
-            found[code] = _text(child.get("DateTime"))
+            found[code] = _text(_v(child, _T_DATETIME))
         elif code == _CODE_EVENT_UID and vt == "UIDREF":
-            found[code] = _text(child.get("UID"))
+            found[code] = _text(_v(child, _T_UID))
         elif code in _NUM_CODES and vt == "NUM":
-            mv = child.get("MeasuredValueSequence")
+            mv = _v(child, _T_MEASURED)
             if not mv:
                 continue
-            unit_seq = mv[0].get("MeasurementUnitsCodeSequence")
-            unit = _text(unit_seq[0].get("CodeValue")) if unit_seq else None
-            found[code] = (_text(mv[0].get("NumericValue")), unit)
+            unit_seq = _v(mv[0], _T_UNITS)
+            unit = _text(_v(unit_seq[0], _T_CODE_VALUE)) if unit_seq else None
+            found[code] = (_text(_v(mv[0], _T_NUMERIC)), unit)
 
 
 def _find_events(items: Iterable[Any], out: list[tuple[str, Any]]) -> None:
     for item in items:
-        if _text(item.get("ValueType")) != "CONTAINER":
+        if _text(_v(item, _T_VALUE_TYPE)) != "CONTAINER":
             continue
         kind = _EVENT_CONTAINERS.get(_code_value(item) or "")
         if kind:
             out.append((kind, item))
         else:
-            _find_events(item.get("ContentSequence") or [], out)
+            _find_events(_v(item, _T_CONTENT_SEQ) or [], out)
 
 
 def _num(

@@ -420,6 +420,178 @@ def save_dataset(ds: Dataset, path: Path, *, deflate: bool = False) -> Path:
 
 
 # ---------------------------------------------------------------------------------------------
+# Fast RDSR encoder (thousands of events): the content tree written as Explicit VR Little
+# Endian bytes directly (PS3.5 7.1.2, 7.5 undefined-length sequences and items); the root
+# attributes and the file meta information are still written by pydicom.
+# ---------------------------------------------------------------------------------------------
+
+_LONG_VRS = {
+    "OB",
+    "OW",
+    "OF",
+    "SQ",
+    "UT",
+    "UN",
+    "UC",
+    "UR",
+    "OD",
+    "OL",
+    "OV",
+    "SV",
+    "UV",
+}
+_ITEM = b"\xfe\xff\x00\xe0\xff\xff\xff\xff"
+_ITEM_END = b"\xfe\xff\x0d\xe0\x00\x00\x00\x00"
+_SEQ_END = b"\xfe\xff\xdd\xe0\x00\x00\x00\x00"
+
+
+def _el(group: int, elem: int, vr: str, text: str) -> bytes:
+    """One element with an (even-padded) text value, Explicit VR Little Endian."""
+    import struct
+
+    raw = text.encode("ascii")
+    if len(raw) % 2:
+        raw += b"\x00" if vr == "UI" else b" "
+    head = struct.pack("<HH", group, elem) + vr.encode("ascii")
+    if vr in _LONG_VRS:
+        return head + b"\x00\x00" + struct.pack("<I", len(raw)) + raw
+    return head + struct.pack("<H", len(raw)) + raw
+
+
+def _sq(group: int, elem: int, items: list[bytes]) -> bytes:
+    import struct
+
+    body = b"".join(_ITEM + it + _ITEM_END for it in items)
+    return (
+        struct.pack("<HH", group, elem)
+        + b"SQ\x00\x00\xff\xff\xff\xff"
+        + body
+        + _SEQ_END
+    )
+
+
+def _code_bytes(value: str, scheme: str, meaning: str) -> bytes:
+    return (
+        _el(0x0008, 0x0100, "SH", value)
+        + _el(0x0008, 0x0102, "SH", scheme)
+        + _el(0x0008, 0x0104, "LO", meaning)
+    )
+
+
+_CODE_CACHE: dict[tuple[str, str], bytes] = {}
+
+
+def _concept(concept: tuple[str, str]) -> bytes:
+    """ConceptNameCodeSequence (0040,A043) of a DCM concept (cached: the same bytes each time)."""
+    if concept not in _CODE_CACHE:
+        _CODE_CACHE[concept] = _sq(
+            0x0040, 0xA043, [_code_bytes(concept[0], "DCM", concept[1])]
+        )
+    return _CODE_CACHE[concept]
+
+
+def _head(value_type: str, concept: tuple[str, str]) -> bytes:
+    return (
+        _el(0x0040, 0xA010, "CS", "CONTAINS")
+        + _el(0x0040, 0xA040, "CS", value_type)
+        + _concept(concept)
+    )
+
+
+def _num_bytes(concept: tuple[str, str], value: float, unit: tuple[str, str]) -> bytes:
+    units = _sq(0x0040, 0x08EA, [_code_bytes(unit[0], "UCUM", unit[1])])
+    mv = units + _el(0x0040, 0xA30A, "DS", _ds(value))
+    return _head("NUM", concept) + _sq(0x0040, 0xA300, [mv])
+
+
+def _event_bytes(
+    dt_text: str, uid: str, kv: float, ma: float, t_ms: float, uas: float, fs_mm: float
+) -> bytes:
+    """One TID 10003 irradiation event item (its content, without the item delimiters)."""
+    children = [
+        _head("DATETIME", C_DT_STARTED) + _el(0x0040, 0xA120, "DT", dt_text),
+        _head("UIDREF", C_EVENT_UID) + _el(0x0040, 0xA124, "UI", uid),
+        _num_bytes(C_KVP, kv, U_KV),
+        _num_bytes(C_TUBE_CURRENT, ma, U_MA),
+        _num_bytes(C_EXPOSURE_TIME, t_ms, U_MS),
+        _num_bytes(C_EXPOSURE, uas, U_UAS),
+    ]
+    if fs_mm == fs_mm:  # not NaN
+        children.append(_num_bytes(C_FOCAL_SPOT, fs_mm, U_MM))
+    return (
+        _head("CONTAINER", C_EVENT)
+        + _el(0x0040, 0xA050, "CS", "SEPARATE")
+        + _sq(0x0040, 0xA730, children)
+    )
+
+
+def _write_rdsr_fast(
+    events: pd.DataFrame,
+    device: Device,
+    utc_offset_minutes: int,
+    rng: random.Random,
+    path: Path,
+    deflate: bool,
+) -> Path:
+    """Write a projection RDSR whose events are the rows of ``events`` (columns as built in
+    :func:`write_dicom_workload`) without building pydicom objects per content item."""
+    import zlib
+
+    from pydicom.filebase import DicomBytesIO
+    from pydicom.filewriter import write_dataset, write_file_meta_info
+
+    ds = rdsr_dataset(
+        events.iloc[:0], device=device, utc_offset_minutes=utc_offset_minutes, rng=rng
+    )
+    _, da, tm = _dicom_dt(events["timestamp_local"].min())
+    ds.ContentDate = da
+    ds.ContentTime = tm
+    proc = ds.ContentSequence
+    del ds.ContentSequence
+    body = DicomBytesIO()
+    body.is_little_endian = True
+    body.is_implicit_VR = False
+    write_dataset(body, ds)
+    proc_item = (
+        _el(0x0040, 0xA010, "CS", "HAS CONCEPT MOD")
+        + _el(0x0040, 0xA040, "CS", "CODE")
+        + _concept(C_PROCEDURE)
+        + _sq(0x0040, 0xA168, [_code_bytes(C_PROJECTION[0], "DCM", C_PROJECTION[1])])
+    )
+    assert len(proc) == 1
+    dts = events["timestamp_local"].dt.strftime("%Y%m%d%H%M%S.%f") + [
+        _offset_text(int(m)) for m in events["offset_minutes"]
+    ]
+    items = [proc_item] + [
+        _event_bytes(dt, uid, kv, ma, t * 1000.0, mas * 1000.0, fs)
+        for dt, uid, kv, ma, t, mas, fs in zip(
+            dts,
+            events["event_uid"],
+            events["tube_voltage_kv"],
+            events["tube_current_ma"],
+            events["exposure_time_s"],
+            events["exposure_mas"],
+            events["focal_spot_mm"],
+            strict=True,
+        )
+    ]
+    data = body.getvalue() + _sq(0x0040, 0xA730, items)
+    ds.file_meta.TransferSyntaxUID = DEFLATED if deflate else EXPLICIT_LE
+    meta = DicomBytesIO()
+    meta.is_little_endian = True
+    meta.is_implicit_VR = False
+    write_file_meta_info(meta, ds.file_meta)
+    if deflate:
+        comp = zlib.compressobj(9, zlib.DEFLATED, -15)  # raw deflate, PS3.5 A.5
+        data = comp.compress(data) + comp.flush()
+        if len(data) % 2:
+            data += b"\x00"
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_bytes(b"\x00" * 128 + b"DICM" + meta.getvalue() + data)
+    return path
+
+
+# ---------------------------------------------------------------------------------------------
 # The demo workload
 # ---------------------------------------------------------------------------------------------
 
@@ -522,15 +694,14 @@ def write_dicom_workload(
     written: list[Path] = []
     for (system_id, day), grp in e.groupby(["system_id", "local_day"], sort=True):
         dev = devices[str(system_id)]
-        ds = rdsr_dataset(
-            grp,
-            device=dev,
-            utc_offset_minutes=int(grp["offset_minutes"].iloc[0]),
-            rng=rng,
-        )
         written.append(
-            save_dataset(
-                ds, out / "rdsr" / f"{dev.station_name}_{day}.dcm", deflate=deflate
+            _write_rdsr_fast(
+                grp,
+                dev,
+                int(grp["offset_minutes"].iloc[0]),
+                rng,
+                out / "rdsr" / f"{dev.station_name}_{day}.dcm",
+                deflate,
             )
         )
 
