@@ -584,3 +584,17 @@ def test_patient_data_never_stored(con, tmp_path):
         values = [v[0] for v in con.execute(q).fetchall() if v[0] is not None]
         for needle in needles:
             assert not any(needle in v for v in values), (table, column, needle)
+
+
+def test_rdsr_unknown_unit_rejects_that_event_once(con, tmp_path):
+    ev = _events(2, datetime(2025, 7, 1, 8, 0, 0))
+    ds = rdsr_dataset(ev, device=DEV, utc_offset_minutes=0, rng=random.Random(15))
+    first_event = ds.ContentSequence[1]
+    kvp = next(it for it in first_event.ContentSequence if it.ValueType == "NUM")
+    kvp.MeasuredValueSequence[0].MeasurementUnitsCodeSequence[0].CodeValue = "kPa"
+    path = save_dataset(ds, tmp_path / "units")
+    rep = dicom.ingest_dicom_paths(con, [path])[0]
+    assert (rep["rows_read"], rep["rows_accepted"], rep["rows_rejected"]) == (2, 1, 1)
+    rej = con.execute("SELECT line, field, raw_value, reason FROM rejects").fetchall()
+    assert len(rej) == 1 and rej[0][:3] == (1, "KVP", "70 kPa")
+    assert "unit 'kPa' not understood" in rej[0][3]

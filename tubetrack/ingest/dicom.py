@@ -195,6 +195,9 @@ _COLUMNS = (
     "ma_field",
     "t_field",
     "mas_field",
+    "unit_field",
+    "unit_raw",
+    "unit_reason",
 )
 
 
@@ -355,20 +358,20 @@ def _find_events(items: Iterable[Any], out: list[tuple[str, Any]]) -> None:
 
 
 def _num(
-    found: dict[str, Any], code: str, qty: str, fs: _FileState, line: int
+    found: dict[str, Any], code: str, qty: str, bad_units: list[tuple[str, str, str]]
 ) -> tuple[str | None, float | None]:
-    """(text, factor) of a NUM item; an unknown unit becomes a reject of that field."""
+    """(text, factor) of a NUM item; an unknown unit is noted in ``bad_units`` (the row is
+    then rejected with that item's name when it is a required quantity)."""
     val = found.get(code)
     if not val or val[0] is None:
         return None, None
     text, unit = val
     factor = _UNIT_FACTORS[qty].get(unit or "")
     if factor is None:
-        fs.file_rejects.append(
+        bad_units.append(
             (
-                line,
                 _NUM_NAMES[code],
-                text,
+                f"{text} {unit}",
                 f"unit {unit!r} not understood; expected one of {sorted(_UNIT_FACTORS[qty])}",
             )
         )
@@ -406,13 +409,17 @@ def _read_rdsr(ds: Any, idx: int, fs: _FileState, batch: _Batch) -> None:
     for n, (kind, item) in enumerate(events, start=1):
         found: dict[str, Any] = {}
         _walk_event(item, found)
-        kv = _num(found, "113733", "kv", fs, n)
-        ma = _num(found, "113734", "ma", fs, n)
-        t = _num(found, "113824", "t", fs, n)
-        mas = _num(found, "113736", "mas", fs, n)
-        fsz = _num(found, "113766", "fs", fs, n)
-        pw = _num(found, "113793", "pulse_width", fs, n)
-        npl = _num(found, "113768", "n_pulses", fs, n)
+        bad: list[tuple[str, str, str]] = []
+        ignored: list[
+            tuple[str, str, str]
+        ] = []  # optional items with a unit we do not know
+        kv = _num(found, "113733", "kv", bad)
+        ma = _num(found, "113734", "ma", bad)
+        t = _num(found, "113824", "t", bad)
+        mas = _num(found, "113736", "mas", bad)
+        fsz = _num(found, "113766", "fs", ignored)
+        pw = _num(found, "113793", "pulse_width", ignored)
+        npl = _num(found, "113768", "n_pulses", ignored)
         batch.add(
             file_idx=idx,
             source_line=n,
@@ -433,6 +440,9 @@ def _read_rdsr(ds: Any, idx: int, fs: _FileState, batch: _Batch) -> None:
             pw_text=pw[0],
             pw_f=pw[1],
             np_text=npl[0],
+            unit_field=bad[0][0] if bad else None,
+            unit_raw=bad[0][1] if bad else None,
+            unit_reason=bad[0][2] if bad else None,
             kv_field="KVP",
             ma_field="X-Ray Tube Current",
             t_field="Exposure Time",
@@ -617,6 +627,14 @@ def _canonical(
         return mask
 
     bad = pd.Series(False, index=df.index)
+    has_unit_problem = df["unit_reason"].notna()
+    if bool(has_unit_problem.any()):
+        r = df.loc[has_unit_problem, ["file_idx", "source_line"]].copy()
+        r["field"] = df.loc[has_unit_problem, "unit_field"]
+        r["raw_value"] = df.loc[has_unit_problem, "unit_raw"]
+        r["reason"] = df.loc[has_unit_problem, "unit_reason"]
+        rej_parts.append(r)
+        bad |= has_unit_problem
     bad |= reject(
         df["dt_text"].isna(),
         None,
