@@ -598,3 +598,22 @@ def test_rdsr_unknown_unit_rejects_that_event_once(con, tmp_path):
     rej = con.execute("SELECT line, field, raw_value, reason FROM rejects").fetchall()
     assert len(rej) == 1 and rej[0][:3] == (1, "KVP", "70 kPa")
     assert "unit 'kPa' not understood" in rej[0][3]
+
+
+def test_implausible_factors_are_rejected(con, tmp_path):
+    rng = random.Random(16)
+    t0 = datetime(2025, 1, 11, 9, 0, 0)
+    # kV written in volts and mA in microamperes by mistake
+    volts = _image(tmp_path, "volts", rng, t0, tube_voltage_kv=81000.0)
+    micro = _image(
+        tmp_path,
+        "micro",
+        rng,
+        t0 + timedelta(minutes=1),
+        tube_current_ma=320000.0,
+        exposure_mas=None,
+    )
+    reps = dicom.ingest_dicom_paths(con, [volts, micro])
+    assert [r["rows_rejected"] for r in reps] == [1, 1]
+    fields = sorted(r[0] for r in con.execute("SELECT field FROM rejects").fetchall())
+    assert fields == ["KVP", "XRayTubeCurrentInuA"]

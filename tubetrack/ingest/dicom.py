@@ -90,6 +90,11 @@ FOCAL_SPOT_SMALL_MAX_MM_DEFAULT = 0.6
 #: Focal spot stored when the object does not record one (counted in the file report).
 FOCAL_SPOT_ASSUMED = "large"
 
+#: Plausibility limits of diagnostic X-ray exposure factors (# common practice: diagnostic
+#: generators reach 150 kV and about 1,000-1,300 mA; values beyond these are unit or coding errors).
+MAX_PLAUSIBLE_KV = 200.0  # [kV]
+MAX_PLAUSIBLE_MA = 2000.0  # [mA]
+
 #: Image-vs-event match tolerances (our rule: DICOM times are the instants the equipment
 #: stamped; an image's acquisition time and the RDSR's DateTime Started may differ by detector
 #: read-out; displayed kV and mA are set values).
@@ -650,18 +655,19 @@ def _canonical(
         "acquisition time is not a valid DICOM date-time (or falls in a daylight-saving gap)",
     )
     bad |= reject(
-        ~bad & (kv.isna() | (kv <= 0)),
+        ~bad & (kv.isna() | (kv <= 0) | (kv > MAX_PLAUSIBLE_KV)),
         "kv_field",
         None,
         "kv_text",
-        "kVp missing, not a number or not positive",
+        f"kVp missing, not a number, not positive or above {MAX_PLAUSIBLE_KV:g} kV",
     )
     bad |= reject(
-        ~bad & (ma.isna() | (ma <= 0)),
+        ~bad & (ma.isna() | (ma <= 0) | (ma > MAX_PLAUSIBLE_MA)),
         "ma_field",
         None,
         "ma_text",
-        "tube current missing (and not derivable from mAs / time) or not positive",
+        "tube current missing (and not derivable from mAs / time), not positive or above "
+        f"{MAX_PLAUSIBLE_MA:g} mA",
     )
     bad |= reject(
         ~bad & (t.isna() | (t <= 0)) & (mas.isna() | (mas <= 0)),
