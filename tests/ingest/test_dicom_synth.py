@@ -104,3 +104,11 @@ def test_files_are_valid_reproducible_and_anonymous(tmp_path):
         assert UID(ds.SOPInstanceUID).is_valid and ds.SOPInstanceUID.startswith("2.25.")
         assert str(ds.PatientName) == "" and ds.PatientID == ""
         assert "PatientBirthDate" not in ds and "AccessionNumber" not in ds
+
+
+def test_size_budget_warns(tmp_path):
+    from tubetrack.errors import TubetrackWarning
+
+    exp, systems = _fleet(30)
+    with pytest.warns(TubetrackWarning, match="byte budget"):
+        write_dicom_workload(exp, systems, tmp_path / "d", seed=1, max_bytes=1000)

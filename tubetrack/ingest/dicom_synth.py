@@ -620,6 +620,7 @@ def write_dicom_workload(
     max_images: int = 40,
     deflate: bool = True,
     write_mapping: bool = True,
+    max_bytes: int = 1_000_000,
 ) -> list[Path]:
     """Write the exposures as RDSRs (one per device and local day) plus a few image headers.
 
@@ -644,6 +645,9 @@ def write_dicom_workload(
         Write the Deflated Explicit VR Little Endian transfer syntax (about 10x smaller).
     write_mapping
         Also write ``dicom-devices.csv`` (device_serial, station_name, system_id).
+    max_bytes
+        Size budget of the output [bytes]; exceeding it warns (TubetrackWarning): the committed
+        sample must stay small, so pass fewer days of exposures.
 
     Returns
     -------
@@ -746,6 +750,18 @@ def write_dicom_workload(
         path = out / "dicom-devices.csv"
         mp.to_csv(path, index=False, lineterminator="\n")
         written.append(path)
+    total = sum(p.stat().st_size for p in written)
+    if total > max_bytes:
+        import warnings
+
+        from tubetrack.errors import TubetrackWarning
+
+        warnings.warn(
+            f"DICOM workload in {out} is {total:,} bytes, above the {max_bytes:,}-byte budget; "
+            "pass fewer exposures (fewer days or systems).",
+            TubetrackWarning,
+            stacklevel=2,
+        )
     return sorted(written)
 
 
