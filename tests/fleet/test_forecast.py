@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 from datetime import datetime
@@ -230,3 +231,64 @@ def test_fft_tree_equals_recursive_dp(k):
     # double-precision FFT round-off over ~10 levels: absolute error well below 1e-13
     np.testing.assert_allclose(fft, dp, atol=1e-13)
     assert fft.sum() == pytest.approx(1.0, abs=1e-12)
+
+
+def _scaled(fit, factor):
+    return dataclasses.replace(fit, cov=fit.cov * factor)
+
+
+def test_parameter_draws_widen_intervals_and_vanish_with_a_sharp_fit():
+    fit = _fit()
+    rng = np.random.default_rng(4)
+    life = _life(list(rng.uniform(50, 450, 40)))
+    plug = replacement_forecast(life, fit, as_of=datetime(2025, 1, 1), months=12)
+    pred = replacement_forecast(
+        life, fit, as_of=datetime(2025, 1, 1), months=12, parameter_draws=200
+    )
+    # the expected counts stay the plug-in values
+    np.testing.assert_allclose(
+        pred.summary["expected_replacements"], plug.summary["expected_replacements"]
+    )
+    width = lambda s: s["cumulative_upper_95"] - s["cumulative_lower_95"]  # noqa: E731
+    assert (width(pred.summary) >= width(plug.summary)).all()
+    assert width(pred.summary).iloc[-1] > width(plug.summary).iloc[-1]
+    assert pred.summary["interval_basis"].iloc[0].startswith("predictive")
+    # with (almost) no parameter uncertainty the mixture is the plug-in distribution
+    sharp = replacement_forecast(
+        life,
+        _scaled(fit, 1e-12),
+        as_of=datetime(2025, 1, 1),
+        months=12,
+        parameter_draws=20,
+    )
+    cols = [
+        "lower_80",
+        "upper_80",
+        "lower_95",
+        "upper_95",
+        "cumulative_lower_95",
+        "cumulative_upper_95",
+    ]
+    pd.testing.assert_frame_equal(sharp.summary[cols], plug.summary[cols])
+
+
+def test_predictive_mixture_matches_simulation_of_parameters_and_outcomes():
+    # Independent check of the mixture: draw parameters from the same normal, then Bernoulli
+    # outcomes of every tube, and compare the distribution of the 12-month total.
+    fit = _fit()
+    life = _life([100.0, 200.0, 300.0, 400.0] * 5)
+    pred = replacement_forecast(
+        life, fit, as_of=datetime(2025, 1, 1), months=12, parameter_draws=400, seed=1
+    )
+    rng = np.random.default_rng(99)
+    z = rng.multivariate_normal([math.log(fit.eta), math.log(fit.beta)], fit.cov, 20000)
+    eta, beta = np.exp(z[:, :1]), np.exp(z[:, 1:])
+    age = life["exit_days"].to_numpy()[None, :]
+    h = (pd.Timestamp("2026-01-01") - pd.Timestamp("2025-01-01")).days
+    p = -np.expm1(-(((age + h) / eta) ** beta - (age / eta) ** beta))
+    totals = (rng.random(p.shape) < p).sum(axis=1)
+    lo, hi = np.quantile(totals, [0.025, 0.975])
+    last = pred.summary.iloc[-1]
+    # quantiles of integer counts from 400 vs 20000 parameter draws agree within one count
+    assert abs(last["cumulative_lower_95"] - lo) <= 1
+    assert abs(last["cumulative_upper_95"] - hi) <= 1

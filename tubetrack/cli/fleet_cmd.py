@@ -332,7 +332,9 @@ def survival_cmd(
     )
 
 
-def _forecast(con, life, as_of_ts, *, clock, renewal, months, horizon_days, quiet):
+def _forecast(
+    con, life, as_of_ts, *, clock, renewal, months, horizon_days, quiet, draws=0
+):
     from tubetrack.fleet.forecast import replacement_forecast
     from tubetrack.fleet.models import fit_fleet_models, read_health_rul_cdf
 
@@ -354,6 +356,7 @@ def _forecast(con, life, as_of_ts, *, clock, renewal, months, horizon_days, quie
         clock=clock,
         renewal=renewal,
         horizon_days=horizon_days,
+        parameter_draws=draws,
     )
     _warn_notes(
         [n for n in (*models.notes, *fc.notes) if "result_health_rul_cdf" not in n],
@@ -362,6 +365,16 @@ def _forecast(con, life, as_of_ts, *, clock, renewal, months, horizon_days, quie
     return fc, models, health
 
 
+DrawsOption = Annotated[
+    int,
+    typer.Option(
+        "--parameter-draws",
+        help="Weibull parameter sets drawn from the fit's uncertainty for predictive "
+        "intervals (0: plug-in intervals that treat the fit as exact). Run time grows with "
+        "draws x tubes; use fewer for fleets of thousands of tubes.",
+        min=0,
+    ),
+]
 RenewalOption = Annotated[
     bool,
     typer.Option(
@@ -407,6 +420,7 @@ def forecast_cmd(
         ),
     ] = None,
     renewal: RenewalOption = False,
+    parameter_draws: DrawsOption = 100,
     clock: ClockOption = ClockChoice.days,
     show: Annotated[
         str,
@@ -437,6 +451,7 @@ def forecast_cmd(
             months=months,
             horizon_days=horizon_days,
             quiet=quiet,
+            draws=parameter_draws,
         )
         summary = fc.summary
         if by is not None:
@@ -464,6 +479,7 @@ def forecast_cmd(
                 "renewal": renewal,
                 "clock": clock.value,
                 "price_list": str(price_list) if price_list else None,
+                "parameter_draws": parameter_draws,
                 "eta": models.all_cause.eta,
                 "beta": models.all_cause.beta,
             }
@@ -570,6 +586,7 @@ def spares_cmd(
         float, typer.Option("--horizon-days", help="Horizon [d].")
     ] = 365.0,
     renewal: RenewalOption = True,
+    parameter_draws: DrawsOption = 100,
     clock: ClockOption = ClockChoice.days,
     quiet: QuietOption = False,
     no_store: NoStoreOption = False,
@@ -589,6 +606,7 @@ def spares_cmd(
             months=12,
             horizon_days=horizon_days,
             quiet=quiet,
+            draws=parameter_draws,
         )
         col = {"model": "model_label", "modality": "modality", "site": "site"}[
             (by or GroupBy.model).value

@@ -12,7 +12,9 @@ never mixed: one row per currency.
 
 Spares: per model label, the number of replacements over the horizon is the sum of independent
 per-tube counts (Poisson-binomial, or with the renewal option counts 0, 1, 2+); the stock for a
-service level is the smallest s with P(N <= s) >= level.
+service level is the smallest s with P(N <= s) >= level. With parameter draws in the forecast,
+N's pmf is the mixture over the draws (predictive), so the stock also covers the uncertainty of
+the fitted lifetime model.
 """
 
 from __future__ import annotations
@@ -172,8 +174,15 @@ def spend_forecast(
     *,
     n_sims: int = 20000,
     seed: int = 20261202,
+    max_draws: int = 50,
 ) -> BudgetResult:
-    """Expected spend per month and quarter with 80 % and 95 % intervals (see module notes)."""
+    """Expected spend per month and quarter with 80 % and 95 % intervals (see module notes).
+
+    When the forecast carries parameter draws (``parameter_draws`` > 0), each simulated spend
+    first picks one of the first ``max_draws`` parameter draws (equal shares) and then draws the
+    per-price counts under it: predictive intervals that include the Weibull parameter
+    uncertainty. The expected spend stays the plug-in value.
+    """
     import pandas as pd
 
     prices = tube_prices(forecast.per_tube, price_list)
@@ -192,8 +201,13 @@ def spend_forecast(
     t["quarter"] = pd.PeriodIndex(pd.to_datetime(t["month"]), freq="Q").astype(str)
     t["month_label"] = pd.to_datetime(t["month"]).dt.strftime("%Y-%m")
     rng = np.random.default_rng(seed)
+    pos = {tid: i for i, tid in enumerate(forecast.per_tube["tube_id"])}
+    draws = forecast.draws_monthly
+    if draws is not None:
+        draws = draws[:max_draws]
     rows = []
     for kind, key in (("month", "month_label"), ("quarter", "quarter")):
+        cols_of = t.groupby(key)["month_index"].unique()
         g = (
             t.groupby([key, "tube_id", "currency"], sort=True)
             .agg(
@@ -209,11 +223,23 @@ def spend_forecast(
             c = priced["price"].to_numpy(dtype=float)
             # exact Poisson-binomial count per distinct price, then seeded draws of the counts
             sims = np.zeros(n_sims)
-            for price_value in np.unique(c):
-                pmf = poisson_binomial_pmf(p[c == price_value])
-                sims += price_value * rng.choice(
-                    len(pmf), size=n_sims, p=pmf / pmf.sum()
-                )
+            if draws is None or not len(priced):
+                for price_value in np.unique(c):
+                    pmf = poisson_binomial_pmf(p[c == price_value])
+                    sims += price_value * rng.choice(
+                        len(pmf), size=n_sims, p=pmf / pmf.sum()
+                    )
+            else:
+                idx = priced["tube_id"].map(pos).to_numpy()
+                cols = np.asarray(cols_of[period]) - 1
+                chunks = np.array_split(np.arange(n_sims), len(draws))
+                for d, chunk in enumerate(chunks):
+                    p_d = np.clip(draws[d][idx][:, cols].sum(axis=1), 0, 1)
+                    for price_value in np.unique(c):
+                        pmf = poisson_binomial_pmf(p_d[c == price_value])
+                        sims[chunk] += price_value * rng.choice(
+                            len(pmf), size=len(chunk), p=pmf / pmf.sum()
+                        )
             q = np.quantile(sims, [0.025, 0.10, 0.90, 0.975]) if len(p) else np.zeros(4)
             rows.append(
                 {
@@ -270,9 +296,13 @@ def spares_plan(
     )
     rows = []
     labels = per[by].fillna("(unknown)")
+    draws = forecast.draws_cumulative_pmf
     for label, idx in per.groupby(labels, sort=True).groups.items():
         pmfs = forecast.cumulative_pmf[np.asarray(idx)]
-        pmf = count_sum_pmf(pmfs)
+        if draws is None:
+            pmf = count_sum_pmf(pmfs)
+        else:  # predictive: mixture over the Weibull parameter draws
+            pmf = np.mean([count_sum_pmf(dp[np.asarray(idx)]) for dp in draws], axis=0)
         s = pmf_quantile(pmf, service_level)
         lo, hi = pmf_interval(pmf, 0.95)
         p_ok = float(np.cumsum(pmf)[s])

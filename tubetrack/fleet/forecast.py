@@ -274,9 +274,11 @@ class ForecastResult:
     ``summary``: one row per month: ``month``, ``month_index``, ``expected_replacements``,
     ``lower_80``, ``upper_80``, ``lower_95``, ``upper_95`` (Poisson-binomial quantiles),
     ``cumulative_expected``, ``cumulative_lower_95``, ``cumulative_upper_95``, ``tubes``,
-    ``renewal``.
+    ``renewal``, ``interval_basis`` (plug-in | predictive (N parameter draws)).
     ``cumulative_pmf``: per-tube pmf of the count over the whole horizon (n x 3 array, counts
-    0, 1, 2+) used for spares.
+    0, 1, 2+) used for spares. ``monthly``: per-tube expected counts (n x periods).
+    ``draws_monthly`` (D x n x periods) and ``draws_cumulative_pmf`` (D x n x 3): the same under
+    each parameter draw (``None`` without draws).
     """
 
     tubes: pd.DataFrame
@@ -286,6 +288,9 @@ class ForecastResult:
     as_of: datetime
     renewal: bool
     notes: tuple[str, ...]
+    monthly: np.ndarray | None = None
+    draws_monthly: np.ndarray | None = None
+    draws_cumulative_pmf: np.ndarray | None = None
 
 
 def tube_replacement_cdf(
@@ -354,6 +359,30 @@ def tube_replacement_cdf(
     return first_cdf, source, p_fil, rate, notes
 
 
+def _draw_fits(fit: WeibullResult | None, n: int, rng: np.random.Generator) -> list:
+    """Parameter sets drawn from the asymptotic normal of (log eta, log beta)."""
+    from tubetrack.fleet.survival import WeibullResult
+
+    if fit is None:
+        return [None] * n
+    z = rng.multivariate_normal(
+        [math.log(fit.eta), math.log(fit.beta)], fit.cov, size=n
+    )
+    return [
+        WeibullResult(
+            eta=float(math.exp(u)),
+            beta=float(math.exp(v)),
+            log_likelihood=math.nan,
+            cov=fit.cov,
+            n=fit.n,
+            n_failures=fit.n_failures,
+            alpha=fit.alpha,
+            clock=fit.clock,
+        )
+        for u, v in z
+    ]
+
+
 def replacement_forecast(
     life: pd.DataFrame,
     fleet_fit: WeibullResult,
@@ -366,6 +395,8 @@ def replacement_forecast(
     renewal: bool = False,
     grid_days: float = 1.0,
     horizon_days: float | None = None,
+    parameter_draws: int = 0,
+    seed: int = 20261202,
 ) -> ForecastResult:
     """Monthly replacement probabilities per tube and Poisson-binomial fleet totals.
 
@@ -392,6 +423,15 @@ def replacement_forecast(
         Step of the internal day grid [d].
     horizon_days
         Horizon in days instead of ``months`` (the last period may be a partial month) [d].
+    parameter_draws
+        0: intervals are the plug-in Poisson-binomial quantiles (MLE parameters treated as
+        known). N > 0: predictive intervals that also carry the uncertainty of the fitted
+        Weibull parameters: N parameter sets drawn from the asymptotic normal of
+        (log eta, log beta) (inverse observed information), the count pmf is the average of
+        the N Poisson-binomial pmfs (a mixture), and intervals are its quantiles. The expected
+        count stays the plug-in value. Health forecasts are used as given.
+    seed
+        Seed of the parameter draws.
     """
     import pandas as pd
 
@@ -403,47 +443,105 @@ def replacement_forecast(
     horizon = float(edge_days[-1])
     n_grid = max(int(math.ceil(horizon / grid_days)), 1)
     grid = np.linspace(0.0, horizon, n_grid + 1)
-    first_cdf, source, p_fil, rate, more = tube_replacement_cdf(
-        active,
-        fleet_fit,
-        grid,
-        other_fit=other_fit,
-        health_rul_cdf=health_rul_cdf,
-        clock=clock,
-    )
-    notes.extend(more)
+    # linear interpolation weights from the day grid to the period edges (vectorised)
+    hi_idx = np.clip(np.searchsorted(grid, edge_days, side="left"), 1, n_grid)
+    lo_idx = hi_idx - 1
+    w_hi = (edge_days - grid[lo_idx]) / (grid[hi_idx] - grid[lo_idx])
 
-    if renewal:
-        if clock != "days":
-            # renewal on calendar days needs the new tube's clock: use the fleet median rate
-            med_rate = float(np.nanmedian(rate)) if len(rate) else 1.0
-            new_cdf = lambda d: fleet_fit.cdf(np.asarray(d) * med_rate)  # noqa: E731
+    def position_expectations(ff, of):
+        first_cdf, source, _, rate, more = tube_replacement_cdf(
+            active, ff, grid, other_fit=of, health_rul_cdf=health_rul_cdf, clock=clock
+        )
+        if renewal:
+            if clock != "days":
+                # the new tube's workload clock runs at the fleet's median rate
+                med_rate = float(np.nanmedian(rate)) if len(rate) else 1.0
+                new_cdf = lambda d: ff.cdf(np.asarray(d) * med_rate)  # noqa: E731
+            else:
+                new_cdf = ff.cdf
+            _, m_new = renewal_function(new_cdf, horizon, n_grid)
+            expected = delayed_renewal(first_cdf, m_new, grid)
+            # P(N >= 2) within the horizon: int_0^h F(h - x) dF1(x)
+            f_new = np.asarray(new_cdf(grid), dtype=float)
+            d1 = np.diff(first_cdf, axis=1)
+            p2 = d1 @ ((f_new[::-1][:-1] + f_new[::-1][1:]) / 2)
         else:
-            new_cdf = fleet_fit.cdf
-        _, m_new = renewal_function(new_cdf, horizon, n_grid)
-        expected = delayed_renewal(first_cdf, m_new, grid)
-        # P(N >= 2) within the horizon: int_0^h F(h - x) dF1(x)
-        f_new = np.asarray(new_cdf(grid), dtype=float)
-        d1 = np.diff(first_cdf, axis=1)
-        p2 = d1 @ ((f_new[::-1][:-1] + f_new[::-1][1:]) / 2)
-    else:
-        expected = first_cdf
-        p2 = np.zeros(len(active))
-    at_edges = (
-        np.stack([np.interp(edge_days, grid, row) for row in expected])
-        if len(active)
-        else np.zeros((0, len(edge_days)))
-    )
+            expected = first_cdf
+            p2 = np.zeros(len(active))
+        at_edges = expected[:, lo_idx] * (1 - w_hi) + expected[:, hi_idx] * w_hi
+        p_any = np.clip(first_cdf[:, -1], 0, 1)
+        cum_pmf = np.clip(np.column_stack([1 - p_any, p_any - p2, p2]), 0, 1)
+        cum_pmf = cum_pmf / np.where(
+            cum_pmf.sum(axis=1, keepdims=True) > 0,
+            cum_pmf.sum(axis=1, keepdims=True),
+            1,
+        )
+        return at_edges, p2, cum_pmf, source, more
+
+    at_edges, p2, cum_pmf, source, more = position_expectations(fleet_fit, other_fit)
+    notes.extend(more)
     monthly = np.diff(at_edges, axis=1)  # (n, months)
     if renewal and np.any(monthly > 0.5):
         notes.append(
             "some monthly expected counts exceed 0.5; the per-month Bernoulli "
             "approximation of the renewal option is coarse for them."
         )
-    monthly_p = np.clip(monthly, 0, 1)
+    n, k = monthly.shape
+
+    # count distributions: plug-in, or the mixture over parameter draws
+    draws_monthly = None
+    draws_cum_pmf = None
+    if parameter_draws > 0 and n:
+        rng = np.random.default_rng(seed)
+        fleet_draws = _draw_fits(fleet_fit, parameter_draws, rng)
+        other_draws = _draw_fits(other_fit, parameter_draws, rng)
+        dm, dc = [], []
+        for ff, of in zip(fleet_draws, other_draws, strict=True):
+            ae, _, cp, _, _ = position_expectations(ff, of)
+            dm.append(np.diff(ae, axis=1))
+            dc.append(cp)
+        draws_monthly = np.stack(dm)
+        draws_cum_pmf = np.stack(dc)
+        cum_edges = np.concatenate(
+            [np.zeros((parameter_draws, n, 1)), np.cumsum(draws_monthly, axis=2)],
+            axis=2,
+        )
+        month_pmfs = [
+            np.mean(
+                [
+                    poisson_binomial_pmf(np.clip(draws_monthly[d, :, j], 0, 1))
+                    for d in range(parameter_draws)
+                ],
+                axis=0,
+            )
+            for j in range(k)
+        ]
+        cum_pmfs = [
+            np.mean(
+                [
+                    poisson_binomial_pmf(np.clip(cum_edges[d, :, j + 1], 0, 1))
+                    for d in range(parameter_draws)
+                ],
+                axis=0,
+            )
+            for j in range(k - 1)
+        ] + [
+            np.mean(
+                [count_sum_pmf(draws_cum_pmf[d]) for d in range(parameter_draws)],
+                axis=0,
+            )
+        ]
+        basis = f"predictive ({parameter_draws} parameter draws)"
+    else:
+        monthly_p = np.clip(monthly, 0, 1)
+        month_pmfs = [poisson_binomial_pmf(monthly_p[:, j]) for j in range(k)]
+        cum_pmfs = [
+            poisson_binomial_pmf(np.clip(at_edges[:, j + 1] - at_edges[:, 0], 0, 1))
+            for j in range(k - 1)
+        ] + [count_sum_pmf(cum_pmf)]
+        basis = "plug-in"
 
     month_starts = [pd.Timestamp(e).to_period("M").to_timestamp() for e in edges[:-1]]
-    n, k = monthly.shape
     tubes = pd.DataFrame(
         {
             "tube_id": np.repeat(active["tube_id"].to_numpy(), k),
@@ -464,9 +562,9 @@ def replacement_forecast(
     )
     rows = []
     for j in range(k):
-        pmf = poisson_binomial_pmf(monthly_p[:, j])
-        lo80, hi80 = pmf_interval(pmf, 0.80)
-        lo95, hi95 = pmf_interval(pmf, 0.95)
+        lo80, hi80 = pmf_interval(month_pmfs[j], 0.80)
+        lo95, hi95 = pmf_interval(month_pmfs[j], 0.95)
+        clo, chi = pmf_interval(cum_pmfs[j], 0.95)
         rows.append(
             {
                 "month": month_starts[j],
@@ -478,33 +576,17 @@ def replacement_forecast(
                 "upper_80": hi80,
                 "lower_95": lo95,
                 "upper_95": hi95,
+                "cumulative_expected": float(
+                    (at_edges[:, j + 1] - at_edges[:, 0]).sum()
+                ),
+                "cumulative_lower_95": clo,
+                "cumulative_upper_95": chi,
             }
         )
     summary = pd.DataFrame(rows)
-    # pmf over the horizon: counts 0, 1, 2+ (with renewal; P(2+) = p2)
-    p_any = np.clip(first_cdf[:, -1], 0, 1) if n else np.zeros(0)
-    cum_pmf = np.column_stack([1 - p_any, p_any - p2, p2]) if n else np.zeros((0, 3))
-    cum_pmf = np.clip(cum_pmf, 0, 1)
-    cum_pmf = cum_pmf / cum_pmf.sum(axis=1, keepdims=True) if n else cum_pmf
-    cum_total = count_sum_pmf(cum_pmf)
-    summary["cumulative_expected"] = summary["expected_replacements"].cumsum()
-    cum_lo, cum_hi = [], []
-    for j in range(k):
-        if j == k - 1:
-            lo, hi = pmf_interval(cum_total, 0.95)
-        else:
-            lo, hi = pmf_interval(
-                poisson_binomial_pmf(
-                    np.clip(at_edges[:, j + 1] - at_edges[:, 0], 0, 1)
-                ),
-                0.95,
-            )
-        cum_lo.append(lo)
-        cum_hi.append(hi)
-    summary["cumulative_lower_95"] = cum_lo
-    summary["cumulative_upper_95"] = cum_hi
     summary["tubes"] = n
     summary["renewal"] = renewal
+    summary["interval_basis"] = basis
     per_tube = pd.DataFrame(
         {
             "tube_id": active["tube_id"],
@@ -531,6 +613,9 @@ def replacement_forecast(
         as_of=as_of_ts.to_pydatetime(),
         renewal=renewal,
         notes=tuple(notes),
+        monthly=monthly,
+        draws_monthly=draws_monthly,
+        draws_cumulative_pmf=draws_cum_pmf,
     )
 
 
