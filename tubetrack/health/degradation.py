@@ -162,16 +162,19 @@ def combine_stations(st: pd.DataFrame) -> pd.DataFrame:
     """Inverse-variance weighted diameter loss per day: day, loss, loss_se, n_stations."""
     if st.empty:
         return pd.DataFrame(columns=["day", "loss", "loss_se", "n_stations"])
-    ok = np.isfinite(st["loss"]) & np.isfinite(st["loss_se"])
-    s = st[ok].assign(w=1.0 / st.loc[ok, "loss_se"] ** 2)
-    s = s.assign(wl=s["w"] * s["loss"])
-    g = s.groupby("day").agg(w=("w", "sum"), wl=("wl", "sum"), n_stations=("loss", "size"))
+    loss = st["loss"].to_numpy(float)
+    se = st["loss_se"].to_numpy(float)
+    ok = np.isfinite(loss) & np.isfinite(se) & (se > 0)
+    days, inv = np.unique(st["day"].to_numpy()[ok], return_inverse=True)
+    w = 1.0 / se[ok] ** 2
+    sw = np.bincount(inv, weights=w)
+    swl = np.bincount(inv, weights=w * loss[ok])
     return pd.DataFrame(
         {
-            "day": g.index.to_numpy(),
-            "loss": (g["wl"] / g["w"]).to_numpy(),
-            "loss_se": (1.0 / np.sqrt(g["w"])).to_numpy(),
-            "n_stations": g["n_stations"].to_numpy(),
+            "day": days,
+            "loss": swl / sw,
+            "loss_se": 1.0 / np.sqrt(sw),
+            "n_stations": np.bincount(inv),
         }
     )
 

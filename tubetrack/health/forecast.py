@@ -169,36 +169,85 @@ def analyse_tube(
         # --- change points on the focal spot's combined series, shifts removed per station
         base = norm[norm["in_baseline"]]
         wb = 1.0 / base["se_log"] ** 2
-        c0 = (base["log_i_norm"] * wb).groupby(base["tube_current_ma"]).sum() / wb.groupby(
-            base["tube_current_ma"]).sum()
-        resid = norm.assign(r=norm["log_i_norm"] - norm["tube_current_ma"].map(c0),
-                            w=1.0 / norm["se_log"] ** 2).dropna(subset=["r"])
-        comb_r = resid.assign(wr=resid["w"] * resid["r"]).groupby("t_days")[["wr", "w"]].sum()
-        break_t: list[float] = []
+        c0 = (base["log_i_norm"] * wb).groupby(
+            base["tube_current_ma"]
+        ).sum() / wb.groupby(base["tube_current_ma"]).sum()
+        resid = norm.assign(
+            r=norm["log_i_norm"] - norm["tube_current_ma"].map(c0),
+            w=1.0 / norm["se_log"] ** 2,
+        ).dropna(subset=["r"])
+        comb_r = (
+            resid.assign(wr=resid["w"] * resid["r"])
+            .groupby("t_days")[["wr", "w"]]
+            .sum()
+        )
+        shifts: list[tuple[float, float, float, str]] = []
         if len(comb_r):
             tt = comb_r.index.to_numpy(float)
+            ww = comb_r["w"].to_numpy(float)
             yy = (comb_r["wr"] / comb_r["w"]).to_numpy()
-            idx = segments.detect_breaks(tt, yy, penalty_c=p.penalty_c, min_size=p.min_segment_days)
-            break_t = [float(tt[i]) for i in idx]
+            idx = segments.detect_breaks(
+                tt, yy, penalty_c=p.penalty_c, min_size=p.min_segment_days
+            )
+            cands = [(float(tt[i]), "detected") for i in idx]
+            if len(calib):
+                cdays = pd.to_datetime(
+                    calib.loc[calib["focal_spot"] == focal, "day"]
+                ).drop_duplicates()
+                ct = ((cdays - kvm.baseline_start).dt.days.astype(float)).to_numpy()
+                ct = ct[(ct > tt[0] + 3) & (ct < tt[-1] - 3)]
+                # a detected break within 7 days of a calibration is that calibration
+                cands = [c for c in cands if not np.any(np.abs(ct - c[0]) <= 7)]
+                cands += [(float(x), "calibration") for x in ct]
+            shifts = segments.level_shifts(tt, yy, ww, cands)
+        break_t = [sh[0] for sh in shifts]
         corr_parts, last_break = [], None
         for ma, g in norm.groupby("tube_current_ma", sort=True):
             g = g.sort_values("day")
-            seg, fitted, corrected, brk = segments.apply_breaks(
-                g["t_days"].to_numpy(), g["log_i_norm"].to_numpy(), break_t)
+            tg = g["t_days"].to_numpy(float)
+            yg = g["log_i_norm"].to_numpy(float)
+            corrected, deltas = segments.remove_shifts(
+                tg, yg, 1.0 / g["se_log"].to_numpy(float) ** 2, break_t
+            )
+            seg = np.searchsorted(np.asarray(break_t), tg, side="right")
+            fitted = np.full(tg.size, np.nan)
+            for k in np.unique(seg):
+                m = seg == k
+                if m.sum() >= 2 and np.ptp(tg[m]) > 0:
+                    b1, b0 = np.polyfit(tg[m], yg[m], 1)
+                    fitted[m] = b0 + b1 * tg[m]
             corr_parts.append(g.assign(log_i_corr=corrected))
-            drifts.append(pd.DataFrame({
-                "tube_id": tube_id, "focal_spot": focal, "tube_current_ma": float(ma),
-                "day": g["day"].to_numpy(), "filament_current_norm_a": g["filament_current_norm_a"].to_numpy(),
-                "fitted_a": np.exp(fitted), "segment": seg, "series": "exposures"}))
-            for b in brk.itertuples(index=False):
-                day = kvm.baseline_start + pd.Timedelta(days=float(b.t))
-                kind = b.kind
-                if len(calib) and kind != "possible_tube_swap":
-                    cd = pd.to_datetime(calib.loc[calib["focal_spot"] == focal, "day"])
-                    if len(cd) and np.min(np.abs((cd - day).dt.days)) <= 7:
-                        kind = "recalibration"
-                cps.append({"tube_id": tube_id, "focal_spot": focal, "tube_current_ma": float(ma),
-                            "day": day, "kind": kind, "jump_pct": 100.0 * float(np.expm1(b.jump))})
+            drifts.append(
+                pd.DataFrame(
+                    {
+                        "tube_id": tube_id,
+                        "focal_spot": focal,
+                        "tube_current_ma": float(ma),
+                        "day": g["day"].to_numpy(),
+                        "filament_current_norm_a": g[
+                            "filament_current_norm_a"
+                        ].to_numpy(),
+                        "fitted_a": np.exp(fitted),
+                        "segment": seg,
+                        "series": "exposures",
+                    }
+                )
+            )
+            for (tb, _d, _se, origin), delta in zip(shifts, deltas, strict=True):
+                if not np.isfinite(delta):
+                    continue
+                cps.append(
+                    {
+                        "tube_id": tube_id,
+                        "focal_spot": focal,
+                        "tube_current_ma": float(ma),
+                        "day": kvm.baseline_start + pd.Timedelta(days=float(tb)),
+                        "kind": "recalibration"
+                        if origin == "calibration"
+                        else "level_shift",
+                        "jump_pct": 100.0 * float(np.expm1(delta)),
+                    }
+                )
         if break_t:
             last_break = kvm.baseline_start + pd.Timedelta(days=max(break_t))
         if len(calib):
@@ -216,9 +265,16 @@ def analyse_tube(
         first_day = pd.Timestamp(dfs["day"].min())
         gap_days = max(0.0, float((first_day - installed).days))
         early = wear[wear["day"] < first_day + pd.Timedelta(days=p.recent_days)]
-        early_span = max(1.0, min(float(p.recent_days), float((wear["day"].max() - first_day).days) + 1.0))
-        x_pre = gap_days * float(early["wear"].sum()) / early_span if gap_days > 14 else 0.0
-        x_pre_sd = 0.5 * x_pre
+        early_span = max(
+            1.0,
+            min(
+                float(p.recent_days), float((wear["day"].max() - first_day).days) + 1.0
+            ),
+        )
+        x_pre = (
+            gap_days * float(early["wear"].sum()) / early_span if gap_days > 14 else 0.0
+        )
+        x_pre_sd = workload_cv(wear, p.recent_days) * x_pre
         # --- current segment, extended back to min_fit_days
         fit_from = None
         if last_break is not None and len(comb):
@@ -247,8 +303,19 @@ def analyse_tube(
         wien_p50, wien_p180 = float("nan"), float("nan")
         if len(comb) >= 10:
             cw = comb[comb["day"] >= fit_from] if fit_from is not None else comb
-            wk = cw.assign(w=(cw["day"] - cw["day"].min()).dt.days // 7).groupby("w").agg(
-                t=("day", lambda s: float((s.mean() - cw["day"].min()).days)), x=("loss", "mean"))
+            tdays = (cw["day"] - cw["day"].min()).dt.days.to_numpy(float)
+            wk_i = (tdays // 7).astype(int)
+            cnt = np.bincount(wk_i)
+            keep = cnt > 0
+            wk = pd.DataFrame(
+                {
+                    "t": (np.bincount(wk_i, weights=tdays)[keep] / cnt[keep]),
+                    "x": (
+                        np.bincount(wk_i, weights=cw["loss"].to_numpy(float))[keep]
+                        / cnt[keep]
+                    ),
+                }
+            )
             mu, sig = firstpassage.fit_wiener(wk["t"], wk["x"])
             state["wiener_mu"], state["wiener_sigma"] = mu, sig
             if np.isfinite(mu) and np.isfinite(sig) and sig > 0:
@@ -316,7 +383,29 @@ def analyse_tube(
     return out
 
 
-def update_state(state: dict[str, Any], prior_k_mean: float, prior_k_sd: float) -> dict[str, Any]:
+def workload_cv(wear: pd.DataFrame, block_days: int) -> float:
+    """Relative spread of the physics wear per block of ``block_days`` over the logged history.
+
+    Used as the relative uncertainty of the wear before the first logged day (the unlogged months
+    are assumed to vary like the logged ones), floored at 0.15 and 0.5 when fewer than two full
+    blocks exist.
+    """
+    if wear.empty:
+        return 0.5
+    d = pd.to_datetime(wear["day"])
+    blk = ((d - d.min()).dt.days // block_days).to_numpy()
+    full = blk < blk.max()  # the last block is usually partial
+    if np.unique(blk[full]).size < 2:
+        return 0.5
+    sums = np.bincount(blk[full], weights=wear["wear"].to_numpy(float)[full])
+    if sums.mean() <= 0:
+        return 0.5
+    return float(max(0.15, np.std(sums, ddof=1) / sums.mean()))
+
+
+def update_state(
+    state: dict[str, Any], prior_k_mean: float, prior_k_sd: float
+) -> dict[str, Any]:
     """Copy of a state refitted with another prior on k (e.g. the fleet's own, empirical Bayes)."""
     beta, cov = posterior(state["data_precision"], state["data_rhs"], prior_k_mean, prior_k_sd)
     new = dict(state, a=float(beta[0]), k=float(beta[1]), cov=cov)

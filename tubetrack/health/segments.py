@@ -87,7 +87,7 @@ def detect_breaks(
     penalty_c: float = 3.0,
     min_size: int = 10,
     sigma: float | None = None,
-    max_points: int = 200,
+    max_points: int = 100,
 ) -> list[int]:
     """Indices where new segments start (exact break locations), by PELT with a BIC-like penalty.
 
@@ -267,3 +267,106 @@ def apply_breaks(
         rows.append({"index": int(i), "t": float(tb_raw), "jump": float(jump), "kind": kind})
         corrected[i:] -= jump
     return segment, fitted, corrected, pd.DataFrame(rows, columns=["index", "t", "jump", "kind"])
+
+
+def step_fit(
+    t: np.ndarray, y: np.ndarray, w: np.ndarray, tb: float
+) -> tuple[float, float]:
+    """Level shift at ``tb`` with a common slope: y = a + b t + delta [t >= tb], weighted LS.
+
+    A recalibration or sensor offset moves the level but not the wear rate, so both sides share
+    one slope; this estimates the shift far more precisely than two free lines. The standard error
+    is scaled by the residual dispersion when that exceeds one (Draper & Smith, Applied
+    Regression Analysis, 3rd ed., Wiley 1998, ch. 14: indicator variables).
+
+    Returns
+    -------
+    (delta, se) : tuple of float
+        The shift and its standard error; NaN when either side has fewer than 3 points.
+    """
+    t = np.asarray(t, float)
+    y = np.asarray(y, float)
+    w = np.asarray(w, float)
+    step = (t >= tb).astype(float)
+    if step.sum() < 3 or (1 - step).sum() < 3:
+        return float("nan"), float("nan")
+    X = np.column_stack([np.ones_like(t), t - tb, step])
+    A = X.T @ (X * w[:, None])
+    try:
+        cov = np.linalg.inv(A)
+    except np.linalg.LinAlgError:
+        return float("nan"), float("nan")
+    beta = cov @ (X.T @ (w * y))
+    resid = y - X @ beta
+    disp = max(1.0, float(np.sum(w * resid**2) / max(t.size - 3, 1)))
+    return float(beta[2]), float(np.sqrt(cov[2, 2] * disp))
+
+
+def level_shifts(
+    t: np.ndarray,
+    y: np.ndarray,
+    w: np.ndarray,
+    candidates: list[tuple[float, str]],
+    window_days: float = 120.0,
+    z_detected: float = 3.0,
+    z_calibration: float = 2.0,
+) -> list[tuple[float, float, float, str]]:
+    """Keep the candidate breaks whose level shift is significant on a combined series.
+
+    Parameters
+    ----------
+    t, y, w
+        Combined series of one focal spot (time [days], ln-current residual, weight 1/se^2).
+    candidates
+        (time, origin) with origin ``"detected"`` (PELT) or ``"calibration"`` (a recorded
+        calibration: a known occasion for a shift, so a lower bar ``z_calibration``).
+    window_days
+        Half-width of the local window, also bounded by the neighbouring candidates [days].
+
+    Returns
+    -------
+    list of (time, delta, se, origin)
+        Significant shifts in time order.
+    """
+    cands = sorted(candidates)
+    kept = []
+    times = [c[0] for c in cands]
+    for j, (tb, origin) in enumerate(cands):
+        lo = max(tb - window_days, times[j - 1] if j > 0 else -np.inf)
+        hi = min(tb + window_days, times[j + 1] if j + 1 < len(cands) else np.inf)
+        m = (t >= lo) & (t < hi)
+        delta, se = step_fit(t[m], y[m], w[m], tb)
+        if not np.isfinite(delta):
+            continue
+        z = z_calibration if origin == "calibration" else z_detected
+        if abs(delta) > z * se:
+            kept.append((float(tb), delta, se, origin))
+    return kept
+
+
+def remove_shifts(
+    t: np.ndarray,
+    y: np.ndarray,
+    w: np.ndarray,
+    shifts: list[float],
+    window_days: float = 120.0,
+) -> tuple[np.ndarray, list[float]]:
+    """Remove one station's own level shift at each accepted break time (common-slope fit).
+
+    Returns the corrected series and the shift removed at each break (NaN when the station has too
+    few points around it; nothing is removed there).
+    """
+    t = np.asarray(t, float)
+    y = np.asarray(y, float).copy()
+    w = np.asarray(w, float)
+    out = []
+    bts = sorted(shifts)
+    for j, tb in enumerate(bts):
+        lo = max(tb - window_days, bts[j - 1] if j > 0 else -np.inf)
+        hi = min(tb + window_days, bts[j + 1] if j + 1 < len(bts) else np.inf)
+        m = (t >= lo) & (t < hi)
+        delta, _se = step_fit(t[m], y[m], w[m], tb)
+        out.append(delta)
+        if np.isfinite(delta):
+            y[t >= tb] -= delta
+    return y, out

@@ -178,7 +178,9 @@ def tube_signatures(
         ["arc_sum", "n_exposures"]
     ].sum()
     trend = poisson_trend(week.index.to_numpy(float) * 7.0, week["arc_sum"], week["n_exposures"])
-    out["arc_trend_per_year"] = float(np.expm1(trend.slope * 365.25)) if np.isfinite(trend.slope) else float("nan")
+    out["arc_trend_per_year"] = (
+        float(np.expm1(min(trend.slope * 365.25, 50.0))) if np.isfinite(trend.slope) else float("nan")
+    )
     out["arc_trend_p"] = trend.p_increase
     if trend.p_increase < p.arc_trend_p and trend.slope > 0 and out["arc_rate_recent_per_1000"] > 0.5:
         out["signals"].append("arc_rising")

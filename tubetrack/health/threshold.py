@@ -2,10 +2,12 @@
 
 For every tube removed with ``removal_reason = 'filament'`` before the analysis date, the wear
 model fitted on its whole history (which ends at the removal) gives the diameter loss at failure,
-``L_i`` with standard error ``s_i``. With at least ``min_failures`` such tubes the threshold is
-their mean and its spread the sample standard deviation (between-tube spread, which includes the
-estimation error), floored at the root-mean-square of the ``s_i`` (so a few coincidentally equal
-values never claim a sharp threshold). With fewer failures the default (10 % mass loss,
+``L_i`` with standard error ``s_i``. With at least ``min_failures`` such tubes the losses are
+pooled as a random-effects model L_i = mu + u_i + e_i, u_i ~ N(0, tau^2) the real tube-to-tube
+spread of the failure point, e_i ~ N(0, s_i^2) the estimation error, with the method-of-moments
+tau^2 of DerSimonian & Laird (1986). The threshold for a new tube is mu with the predictive
+spread sqrt(tau^2 + se(mu)^2), floored at 5 % of mu (a handful of failures never claims a sharp
+threshold). Estimation error is thus not mistaken for tube-to-tube spread. With fewer failures the default (10 % mass loss,
 5.13 % diameter loss) with its assumed spread is used. The spread enters the Monte Carlo of the
 remaining life, so the uncertainty of the threshold widens every interval.
 """
@@ -57,11 +59,30 @@ def learn_threshold(
     n = int(len(f))
     if n < min_failures:
         return Threshold(float(default), float(default_sd), n, "default")
-    loss = f["loss"].to_numpy(float)
-    se = f["loss_se"].to_numpy(float)
-    sd = float(np.std(loss, ddof=1))
-    floor = float(np.sqrt(np.mean(se**2)))
-    return Threshold(float(np.mean(loss)), max(sd, floor), n, "fleet")
+    mu, tau, se_mu = random_effects(
+        f["loss"].to_numpy(float), f["loss_se"].to_numpy(float)
+    )
+    sd = max(float(np.sqrt(tau**2 + se_mu**2)), 0.05 * mu)
+    return Threshold(mu, sd, n, "fleet")
+
+
+def random_effects(y: np.ndarray, se: np.ndarray) -> tuple[float, float, float]:
+    """DerSimonian-Laird random-effects pooling: (mean, tau, standard error of the mean).
+
+    References
+    ----------
+    DerSimonian R., Laird N., "Meta-analysis in clinical trials", Controlled Clinical Trials 7
+    (1986) 177-188, eqs. for Q and tau^2 (method of moments).
+    """
+    y = np.asarray(y, float)
+    w = 1.0 / np.maximum(np.asarray(se, float), 1e-9) ** 2
+    mean_fixed = float(np.sum(w * y) / np.sum(w))
+    q = float(np.sum(w * (y - mean_fixed) ** 2))
+    c = float(np.sum(w) - np.sum(w**2) / np.sum(w))
+    tau2 = max(0.0, (q - (y.size - 1)) / c) if c > 0 else 0.0
+    ws = 1.0 / (1.0 / w + tau2)
+    mean = float(np.sum(ws * y) / np.sum(ws))
+    return mean, float(np.sqrt(tau2)), float(np.sqrt(1.0 / np.sum(ws)))
 
 
 def failed_focal_losses(states: list[dict], removed: pd.DataFrame) -> pd.DataFrame:

@@ -1,0 +1,67 @@
+"""Per-tube pipeline on seeded simulations with closed-form physics (known truth)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from tubetrack.health import sql
+from tubetrack.health.degradation import PowerLawPhysics
+from tubetrack.health.forecast import analyse_tube
+from tubetrack.health.levels import assign_levels
+from tubetrack.health.params import HealthParams
+
+RATE = 1.2e-6  # the analysis' physics: relative diameter loss per hot second at 400 mA [1/s]
+
+
+def _run(mem_store, sim, load, *, k_true=1.0, n_days=500, shift_day=None, params=None, seed=1):
+    exp, truth = sim(seed, n_days=n_days, k_true=k_true, rate_at_400ma_per_s=RATE, shift_day=shift_day)
+    tubes = pd.DataFrame({"tube_id": ["T1"], "system_id": ["S1"],
+                          "installed_at_utc": [pd.Timestamp("2024-01-01")],
+                          "removed_at_utc": [pd.NaT], "removal_reason": [None]})
+    load(mem_store, exp, tubes)
+    daily = sql.load_daily(mem_store)
+    as_of = pd.Timestamp("2024-01-01") + pd.Timedelta(days=n_days)
+    meta = {"tube_id": "T1", "system_id": "S1", "installed_at_utc": "2024-01-01", "as_of": as_of}
+    out = analyse_tube(daily, meta, params or HealthParams(prior_k_sd=5.0), physics=PowerLawPhysics(RATE))
+    return out, truth
+
+
+def test_recovers_known_wear_slope(mem_store, sim, load):
+    # seeded simulation: the wire thins 1.4x faster than the analysis' physics predicts
+    out, truth = _run(mem_store, sim, load, k_true=1.4)
+    st = out["states"][0]
+    k_se = np.sqrt(st["cov"][1, 1])
+    assert abs(st["k"] - 1.4) < 3 * k_se and k_se < 0.1
+    assert abs(st["loss_now"] - truth["loss"].iloc[-1]) < 3 * st["loss_se"] + 0.001
+
+
+def test_known_threshold_crossing_time_inside_interval(mem_store, sim, load):
+    out, truth = _run(mem_store, sim, load, params=HealthParams(prior_k_sd=5.0, eol_diameter_loss_sd=1e-4))
+    rate_per_day = float(truth["loss"].diff().iloc[-200:].mean())
+    true_t = (0.0513 - float(truth["loss"].iloc[-1])) / rate_per_day
+    s = out["summary"].iloc[0]
+    assert s["rul_days_p10"] <= true_t <= s["rul_days_p90"]
+    assert s["rul_days_p50"] == pytest.approx(true_t, rel=0.1)
+    # the exposure-count forecast is the day forecast times the recent exposures per day
+    assert s["rul_exposures_p50"] == pytest.approx(s["rul_days_p50"] * s["exposures_per_day"], rel=1e-9)
+
+
+def test_known_change_point_found_and_wear_carried_over(mem_store, sim, load):
+    out, truth = _run(mem_store, sim, load, n_days=600, shift_day=300)
+    cp = out["changepoints"]
+    assert set(cp["day"]) == {pd.Timestamp("2024-01-01") + pd.Timedelta(days=300)}
+    assert len(cp) == 3 and (cp["jump_pct"].between(1.5, 2.5)).all()
+    st = out["states"][0]
+    # the 2 % sensor step is removed, the wear is not reset
+    assert abs(st["loss_now"] - truth["loss"].iloc[-1]) < 3 * st["loss_se"] + 0.001
+
+
+def test_short_history_gives_wide_interval_and_reason(mem_store, sim, load):
+    short, _ = _run(mem_store, sim, load, n_days=40, params=HealthParams(), seed=3)
+    s = assign_levels(short["summary"], 0.0513, 90, 3650)
+    assert "too little history" in s["reason"].iloc[0]
+    assert s["health_rank"].iloc[0] >= 1
+    row = s.iloc[0]
+    assert (row["rul_days_p90"] - row["rul_days_p10"]) / max(row["rul_days_p50"], 1) > 0.5
