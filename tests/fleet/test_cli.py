@@ -63,7 +63,7 @@ def test_survival_km_csv_has_header(db):
 
 
 def test_forecast_falls_back_without_health_and_uses_it_when_present(db):
-    r = run("forecast", "--db", str(db), "--format", "json")
+    r = run("forecast", "--db", str(db), "--format", "json", "--parameter-draws", "10")
     assert r.exit_code == 0, r.output
     assert "no health forecasts" in r.stderr
     months = json.loads(r.stdout)
@@ -88,7 +88,7 @@ def test_forecast_falls_back_without_health_and_uses_it_when_present(db):
     con.register("r", rul)
     con.execute("CREATE TABLE result_health_rul_cdf AS SELECT * FROM r")
     con.close()
-    r2 = run("forecast", "--db", str(db), "--format", "json")
+    r2 = run("forecast", "--db", str(db), "--format", "json", "--parameter-draws", "0")
     assert r2.exit_code == 0, r2.output
     assert "no health forecasts" not in r2.stderr
     total = sum(m["expected_replacements"] for m in json.loads(r2.stdout))
@@ -111,6 +111,8 @@ def test_forecast_budget_and_groups(db, tmp_path):
         "--format",
         "json",
         "--renewal",
+        "--parameter-draws",
+        "10",
     )
     assert r.exit_code == 0, r.output
     rows = json.loads(r.stdout)
@@ -124,7 +126,17 @@ def test_forecast_budget_and_groups(db, tmp_path):
 
 
 def test_spares_visits_uptime(db):
-    r = run("spares", "--db", str(db), "--format", "json", "--service-level", "0.9")
+    r = run(
+        "spares",
+        "--db",
+        str(db),
+        "--format",
+        "json",
+        "--service-level",
+        "0.9",
+        "--parameter-draws",
+        "10",
+    )
     assert r.exit_code == 0, r.output
     sp = json.loads(r.stdout)
     assert {row["group"] for row in sp} == {"TX-A", "TX-B"}

@@ -255,3 +255,30 @@ def test_system_without_logs_is_truncated_at_the_fleet_log_start():
         life = build_life_data(tubes, as_of=datetime(2023, 1, 1), log_start=starts)
     f = life.frame.set_index("tube_id")
     assert f.loc["B1", "entry_days"] == f.loc["A1", "entry_days"] == 1096.0
+
+
+def test_spares_and_spend_with_parameter_draws():
+    fc0, life = _forecast()
+    fit = fit_weibull(
+        np.array([300.0, 420, 500, 610, 700, 800, 950, 1000, 1000, 1000]),
+        np.array([1, 1, 1, 1, 1, 1, 1, 0, 0, 0], bool),
+    )
+    fc = replacement_forecast(
+        life, fit, as_of=datetime(2025, 1, 1), months=12, parameter_draws=50
+    )
+    plug = spares_plan(fc0, 0.95).summary.set_index("model_label")
+    pred = spares_plan(fc, 0.95).summary.set_index("model_label")
+    assert (pred["p_enough"] >= 0.95).all()
+    np.testing.assert_allclose(
+        pred["expected_replacements"], plug["expected_replacements"]
+    )
+    # seven failures only: the parameter uncertainty must widen the stock's count interval
+    assert (pred["upper_95"] >= plug["upper_95"]).all()
+    assert (pred["upper_95"] - pred["lower_95"]).sum() > (
+        plug["upper_95"] - plug["lower_95"]
+    ).sum()
+    b = spend_forecast(fc, None, n_sims=4000, seed=2).summary
+    b0 = spend_forecast(fc0, None, n_sims=4000, seed=2).summary
+    np.testing.assert_allclose(b["expected_spend"], b0["expected_spend"])
+    q, q0 = b[b["period_kind"] == "quarter"], b0[b0["period_kind"] == "quarter"]
+    assert (q["spend_upper_95"].to_numpy() >= q0["spend_upper_95"].to_numpy()).all()

@@ -592,8 +592,14 @@ def spares_cmd(
     no_store: NoStoreOption = False,
 ) -> None:
     from tubetrack import store
+    from tubetrack.errors import InputError
     from tubetrack.fleet.budget import spares_plan
 
+    if not 0 < service_level < 1:
+        raise InputError(
+            f"--service-level is {service_level!r}; give a probability between 0 and 1 "
+            "(e.g. 0.95)."
+        )
     con = _open(db, not no_store)
     try:
         life, as_of_ts = _life(con, as_of, quiet)

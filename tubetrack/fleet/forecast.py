@@ -25,6 +25,7 @@ the ordinary renewal function of the fleet Weibull computed by numerical convolu
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 from dataclasses import dataclass
@@ -383,7 +384,19 @@ def _draw_fits(fit: WeibullResult | None, n: int, rng: np.random.Generator) -> l
     ]
 
 
-def replacement_forecast(
+def _one_blas_thread():
+    """Limit BLAS to one thread: the forecast's many small matrix products run far slower
+    with thread hand-offs on a busy machine (threadpoolctl comes with scikit-learn)."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover
+        import contextlib
+
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1, user_api="blas")
+
+
+def _replacement_forecast(
     life: pd.DataFrame,
     fleet_fit: WeibullResult,
     *,
@@ -617,6 +630,12 @@ def replacement_forecast(
         draws_monthly=draws_monthly,
         draws_cumulative_pmf=draws_cum_pmf,
     )
+
+
+@functools.wraps(_replacement_forecast)
+def replacement_forecast(*args, **kwargs) -> ForecastResult:
+    with _one_blas_thread():
+        return _replacement_forecast(*args, **kwargs)
 
 
 def expected_failures_next(
