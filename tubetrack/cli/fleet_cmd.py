@@ -346,6 +346,9 @@ def _forecast(
             "fleet Weibull model for every tube. Run `tubetrack health` first to use them.",
             quiet,
         )
+    if draws is None:
+        n_active = int((life.frame["status"] == "in_service").sum())
+        draws = min(100, max(20, 250_000 // max(n_active, 1)))
     fc = replacement_forecast(
         life.frame,
         models.all_cause,
@@ -366,13 +369,15 @@ def _forecast(
 
 
 DrawsOption = Annotated[
-    int,
+    int | None,
     typer.Option(
         "--parameter-draws",
         help="Weibull parameter sets drawn from the fit's uncertainty for predictive "
         "intervals (0: plug-in intervals that treat the fit as exact). Run time grows with "
-        "draws x tubes; use fewer for fleets of thousands of tubes.",
+        "draws x tubes. Default: 100, fewer for large fleets (at most 250,000 tube-draws, "
+        "at least 20 draws).",
         min=0,
+        show_default=False,
     ),
 ]
 RenewalOption = Annotated[
@@ -420,7 +425,7 @@ def forecast_cmd(
         ),
     ] = None,
     renewal: RenewalOption = False,
-    parameter_draws: DrawsOption = 100,
+    parameter_draws: DrawsOption = None,
     clock: ClockOption = ClockChoice.days,
     show: Annotated[
         str,
@@ -586,7 +591,7 @@ def spares_cmd(
         float, typer.Option("--horizon-days", help="Horizon [d].")
     ] = 365.0,
     renewal: RenewalOption = True,
-    parameter_draws: DrawsOption = 100,
+    parameter_draws: DrawsOption = None,
     clock: ClockOption = ClockChoice.days,
     quiet: QuietOption = False,
     no_store: NoStoreOption = False,
