@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import sys
+from datetime import timedelta
 from typing import Annotated, Any
 
 import typer
@@ -64,7 +65,8 @@ def _analyse(db: Any, as_of: str | None, quiet: bool):
     params = HealthParams()
     stderr("analysing tubes ...", quiet)
     result = analyse_fleet(con, as_of=cut, params=params)
-    for table, frame in result.tables().items():
+    started = store.utcnow()
+    for i, (table, frame) in enumerate(result.tables().items()):
         store.write_results(
             con,
             table,
@@ -72,7 +74,7 @@ def _analyse(db: Any, as_of: str | None, quiet: bool):
             kind="health",
             as_of=result.as_of,
             params=result.params,
-            started_at=started,
+            started_at=started + timedelta(microseconds=i),
         )
     return con, result
 
@@ -307,7 +309,7 @@ def backtest_command(
         res.cases,
         kind="backtest",
         params=params,
-        started_at=started,
+        started_at=started + timedelta(microseconds=1),
     )
     con.close()
     emit(

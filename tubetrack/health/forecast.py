@@ -76,7 +76,8 @@ def forecast_from_state(state: dict[str, Any], threshold: float, threshold_sd: f
     loss_now = a + k * (state["x_now"] + pre)
     d = rng.normal(threshold, max(threshold_sd, 1e-9), n)
     d = np.maximum(d, 0.005)
-    w = np.exp(rng.normal(0.0, params.workload_sd, n))
+    w_sd = max(params.workload_sd, float(state.get("workload_cv", 0.0)))
+    w = np.exp(rng.normal(0.0, w_sd, n))
     r = np.maximum(k, MIN_K) * state["rate_phys_per_day"] * w
     with np.errstate(divide="ignore", invalid="ignore"):
         t = np.where(loss_now >= d, 0.0, (d - loss_now) / r)
@@ -274,7 +275,8 @@ def analyse_tube(
         x_pre = (
             gap_days * float(early["wear"].sum()) / early_span if gap_days > 14 else 0.0
         )
-        x_pre_sd = workload_cv(wear, p.recent_days) * x_pre
+        cv = workload_cv(wear, p.recent_days)
+        x_pre_sd = cv * x_pre
         # --- current segment, extended back to min_fit_days
         fit_from = None
         if last_break is not None and len(comb):
@@ -293,6 +295,7 @@ def analyse_tube(
                  "x_now": fit.x_now, "x_b": fit.x_b, "x_pre_sd": fit.x_pre_sd,
                  "rate_phys_per_day": rate_phys,
                  "exposures_per_day": epd, "loss_now": loss_now, "loss_se": loss_se,
+                 "workload_cv": cv if len(wear) and (wear["day"].max() - wear["day"].min()).days >= 2 * p.recent_days else 0.0,
                  "n_days": fit.n_days, "span_days": fit.span_days, "dispersion": fit.dispersion,
                  "data_precision": fit.data_precision, "data_rhs": fit.data_rhs,
                  "flat_k": float(flat_beta[1]) if fit.n_days >= 3 else float("nan"),

@@ -42,7 +42,8 @@ class HealthParams:
     min_failures_for_threshold
         Filament failures needed before the fleet's own threshold is used [count].
     workload_sd
-        Log-scale spread of the future workload around the recent one [1].
+        Minimum log-scale spread of the future workload around the recent one; the tube's own
+        quarter-to-quarter variation is used when larger [1].
     recent_days
         Window of recent workload used for the projection [days].
     n_samples
@@ -71,7 +72,7 @@ class HealthParams:
     eol_diameter_loss: float = DEFAULT_EOL_DIAMETER_LOSS
     eol_diameter_loss_sd: float = DEFAULT_EOL_DIAMETER_LOSS_SD
     min_failures_for_threshold: int = 3
-    workload_sd: float = 0.15
+    workload_sd: float = 0.10
     recent_days: int = 90
     n_samples: int = 2000
     seed: int = 20261202

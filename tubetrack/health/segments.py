@@ -148,7 +148,12 @@ def detect_breaks(
             continue
         errs = [cost.error(bounds[k - 1], c) + cost.error(c, bounds[k + 1]) for c in cands]
         refined.append(int(cands[int(np.argmin(errs))]))
-    return refined
+    # refinement may move two neighbouring coarse breaks onto one point: keep distinct ones
+    out: list[int] = []
+    for b in sorted(set(refined)):
+        if min_size <= b <= n - min_size and (not out or b - out[-1] >= min_size):
+            out.append(b)
+    return out
 
 
 def _line(t: np.ndarray, y: np.ndarray) -> tuple[float, float]:
