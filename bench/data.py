@@ -237,7 +237,7 @@ def _write_open_layout(con: Any, fleet: Any, root: Path) -> tuple[int, int]:
     cols = [c for c in EXPOSURE_COLUMNS if c in fleet.exposures.columns]
     last_day = con.execute("SELECT CAST(max(timestamp_utc) AS DATE) FROM f_exposures").fetchone()[0]
     con.execute(
-        f"""CREATE TEMP TABLE x AS
+        """CREATE TEMP TABLE x AS
         SELECT e.*, s.site FROM f_exposures e LEFT JOIN f_systems s USING (system_id)"""
     )
     sel = ", ".join(_iso(c) + " AS timestamp_utc" if c == "timestamp_utc" else c for c in cols)

@@ -7,7 +7,15 @@ from typing import Annotated
 
 import typer
 
-from tubetrack.cli.common import DbOption, FormatOption, OutputFormat, QuietOption, emit, handle_errors, stderr
+from tubetrack.cli.common import (
+    DbOption,
+    FormatOption,
+    OutputFormat,
+    QuietOption,
+    emit,
+    handle_errors,
+    stderr,
+)
 
 
 def register(app: typer.Typer) -> None:
