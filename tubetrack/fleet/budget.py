@@ -5,7 +5,8 @@ tube's own ``price`` in the inventory). The spend in a period is the price-weigh
 independent replacement indicators, sum_i c_i B_i with B_i ~ Bernoulli(p_i). Its expectation is
 exact (sum c_i p_i). For the intervals, the tubes are grouped by distinct price: the count of
 each price group is Poisson-binomial (exact), so spend = sum_c price_c N_c with independent N_c;
-its quantiles come from seeded draws of the N_c from their exact pmfs (default 20,000 draws;
+its quantiles (inverted-CDF, i.e. attained spend values) come from seeded draws of the N_c from
+their exact pmfs (default 20,000 draws;
 quantile error about sqrt(q (1 - q) / n) in probability, +/- 0.15 percentage points at the
 2.5 % tail; with a single price the quantiles are exact multiples of the price). Currencies are
 never mixed: one row per currency.
@@ -240,7 +241,11 @@ def spend_forecast(
                         sims[chunk] += price_value * rng.choice(
                             len(pmf), size=len(chunk), p=pmf / pmf.sum()
                         )
-            q = np.quantile(sims, [0.025, 0.10, 0.90, 0.975]) if len(p) else np.zeros(4)
+            q = (
+                np.quantile(sims, [0.025, 0.10, 0.90, 0.975], method="inverted_cdf")
+                if len(p)
+                else np.zeros(4)
+            )
             rows.append(
                 {
                     "period": period,
