@@ -76,7 +76,9 @@ def forecast_from_state(state: dict[str, Any], threshold: float, threshold_sd: f
     loss_now = a + k * (state["x_now"] + pre)
     d = rng.normal(threshold, max(threshold_sd, 1e-9), n)
     d = np.maximum(d, 0.005)
-    w_sd = max(params.workload_sd, float(state.get("workload_cv", 0.0)))
+    cv = state.get("workload_cv", np.nan)
+    # unknown workload pattern (less than two full quarters logged): the wider default
+    w_sd = max(params.workload_sd, float(cv)) if np.isfinite(cv) else params.workload_sd_unknown
     w = np.exp(rng.normal(0.0, w_sd, n))
     r = np.maximum(k, MIN_K) * state["rate_phys_per_day"] * w
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -295,7 +297,8 @@ def analyse_tube(
                  "x_now": fit.x_now, "x_b": fit.x_b, "x_pre_sd": fit.x_pre_sd,
                  "rate_phys_per_day": rate_phys,
                  "exposures_per_day": epd, "loss_now": loss_now, "loss_se": loss_se,
-                 "workload_cv": cv if len(wear) and (wear["day"].max() - wear["day"].min()).days >= 2 * p.recent_days else 0.0,
+                 "workload_cv": cv if len(wear) and (wear["day"].max() - wear["day"].min()).days
+                 >= 2 * p.recent_days else float("nan"),
                  "n_days": fit.n_days, "span_days": fit.span_days, "dispersion": fit.dispersion,
                  "data_precision": fit.data_precision, "data_rhs": fit.data_rhs,
                  "flat_k": float(flat_beta[1]) if fit.n_days >= 3 else float("nan"),

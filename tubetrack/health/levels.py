@@ -76,7 +76,7 @@ def assign_levels(summary: pd.DataFrame, threshold: float, min_history_days: flo
 def _fmt_days(days: float, cap: float) -> str:
     if not np.isfinite(days) or days >= cap:
         return f"more than {cap / 365.25:.0f} years"
-    if days <= 0:
+    if days < 1:
         return "now"
     return f"{days:.0f} days"
 
@@ -97,7 +97,7 @@ def _reason(r: dict, threshold: float, cap: float, short: bool) -> str:
         f"of an expected {100 * threshold:.1f} %"
     )
     p50 = r["rul_days_p50"]
-    if p50 <= 0:
+    if p50 < 1:
         parts.append("end of life already reached by the estimate: check the tube")
     else:
         parts.append(
@@ -106,7 +106,8 @@ def _reason(r: dict, threshold: float, cap: float, short: bool) -> str:
         )
     if short:
         parts.append(
-            f"too little history ({r['history_days']:.0f} days of filament current): wide interval"
+            f"too little history ({r['history_days']:.0f} days of filament current): interval "
+            "widened for the unknown workload pattern, treat the dates as rough"
         )
     if r.get("signature_reasons"):
         parts.append(str(r["signature_reasons"]))

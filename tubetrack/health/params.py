@@ -44,6 +44,9 @@ class HealthParams:
     workload_sd
         Minimum log-scale spread of the future workload around the recent one; the tube's own
         quarter-to-quarter variation is used when larger [1].
+    workload_sd_unknown
+        Log-scale spread of the future workload when less than two full quarters are logged (the
+        tube's pattern is not known yet) [1].
     recent_days
         Window of recent workload used for the projection [days].
     n_samples
@@ -73,6 +76,7 @@ class HealthParams:
     eol_diameter_loss_sd: float = DEFAULT_EOL_DIAMETER_LOSS_SD
     min_failures_for_threshold: int = 3
     workload_sd: float = 0.10
+    workload_sd_unknown: float = 0.35
     recent_days: int = 90
     n_samples: int = 2000
     seed: int = 20261202

@@ -186,7 +186,7 @@ def tube_signatures(
         out["signals"].append("arc_rising")
         out["reasons"].append(
             f"arc rate rising ({out['arc_rate_recent_per_1000']:.1f} per 1,000 exposures in the last "
-            f"{p.recent_days} days; Poisson trend p = {trend.p_increase:.1g})"
+            f"{p.recent_days} days; Poisson trend p {_fmt_p(trend.p_increase)})"
         )
         out["level"] = max(out["level"], 2)
     elif out["arc_rate_recent_per_1000"] > p.arc_rate_high_per_1000:
@@ -227,6 +227,10 @@ def tube_signatures(
             out["level"] = max(out["level"], 2 if cat in ("filament_fault", "rotor_fault") else 1)
     out["unforeseeable"] = any(s in out["signals"] for s in ("arc_rising", "arc_high", "rotor_fault", "kv_dropout"))
     return out
+
+
+def _fmt_p(p: float) -> str:
+    return "< 0.0001" if p < 1e-4 else f"= {p:.2g}"
 
 
 def _resistance_change_pct(daily: pd.DataFrame, days: pd.Series, recent: pd.Series) -> float:
