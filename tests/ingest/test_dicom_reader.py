@@ -617,3 +617,29 @@ def test_implausible_factors_are_rejected(con, tmp_path):
     assert [r["rows_rejected"] for r in reps] == [1, 1]
     fields = sorted(r[0] for r in con.execute("SELECT field FROM rejects").fetchall())
     assert fields == ["KVP", "XRayTubeCurrentInuA"]
+
+
+def test_default_time_zone_for_objects_without_offset(con, tmp_path):
+    rng = random.Random(17)
+    winter = _image(
+        tmp_path, "winter", rng, datetime(2025, 1, 15, 9, 0), utc_offset_minutes=None
+    )
+    summer = _image(
+        tmp_path, "summer", rng, datetime(2025, 7, 15, 9, 0), utc_offset_minutes=None
+    )
+    gap = _image(
+        tmp_path, "gap", rng, datetime(2025, 3, 30, 2, 30), utc_offset_minutes=None
+    )
+    reps = dicom.ingest_dicom_paths(
+        con, [winter, summer, gap], default_tz="Europe/Berlin"
+    )
+    assert [r["rows_accepted"] for r in reps] == [1, 1, 0]
+    assert "taken as Europe/Berlin" in reps[0]["message"]
+    tz = ZoneInfo("Europe/Berlin")  # expected offsets from Python's zoneinfo
+    want = [
+        (t - t.replace(tzinfo=tz).utcoffset())
+        for t in (datetime(2025, 1, 15, 9, 0), datetime(2025, 7, 15, 9, 0))
+    ]
+    assert [t.to_pydatetime() for t in _rows(con)["timestamp_utc"]] == want
+    reason = con.execute("SELECT reason FROM rejects").fetchone()[0]
+    assert "daylight-saving gap" in reason
