@@ -112,3 +112,13 @@ def test_size_budget_warns(tmp_path):
     exp, systems = _fleet(30)
     with pytest.warns(TubetrackWarning, match="byte budget"):
         write_dicom_workload(exp, systems, tmp_path / "d", seed=1, max_bytes=1000)
+
+
+def test_folder_argument_reads_the_dicom_files_in_it(tmp_path):
+    exp, systems = _fleet(20)
+    write_dicom_workload(exp, systems, tmp_path / "d", seed=2)
+    (tmp_path / "d" / "notes.txt").write_text("not DICOM")
+    con = store.connect(":memory:")
+    reps = ingest_dicom_paths(con, [tmp_path / "d"])
+    assert not any(r["path"].endswith("notes.txt") for r in reps)
+    assert con.execute("SELECT count(*) FROM exposures").fetchone()[0] == len(exp)

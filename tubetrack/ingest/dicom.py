@@ -1329,6 +1329,30 @@ def _dicomdir_refs(ds: Any, base: Path) -> list[Path]:
     return out
 
 
+def _is_dicom_file(path: Path) -> bool:
+    if path.name.upper() == "DICOMDIR":
+        return True
+    try:
+        with path.open("rb") as fh:
+            fh.seek(128)
+            return fh.read(4) == b"DICM"
+    except OSError:
+        return False
+
+
+def _expand(paths: list[Path]) -> list[Path]:
+    """Folders -> the DICOM files inside them (recursively, sorted); files stay as given."""
+    out: list[Path] = []
+    for p in paths:
+        if p.is_dir():
+            out.extend(
+                f for f in sorted(p.rglob("*")) if f.is_file() and _is_dicom_file(f)
+            )
+        else:
+            out.append(p)
+    return out
+
+
 def _notify(
     progress: ProgressArg, done: int, total: int, path: Path, size: int
 ) -> None:
@@ -1360,7 +1384,8 @@ def ingest_dicom_paths(
         Open store (``tubetrack.store.connect``).
     paths
         DICOM Part 10 files (any name, with or without ``.dcm``) and DICOMDIR files. Files a
-        DICOMDIR references are read too (each once, also when also listed directly).
+        DICOMDIR references are read too (each once, also when also listed directly). A folder
+        stands for the DICOM files in it (bytes 128-131 ``DICM``, or named DICOMDIR).
     progress
         ``callable(done_files, total_files)``, or an object with ``file_started(path, size)``
         (called before each file is read) and optionally ``dicom_advance(done, total)``.
@@ -1386,7 +1411,7 @@ def ingest_dicom_paths(
     """
     import pydicom  # noqa: F401  (fail early with an ImportError when pydicom is absent)
 
-    queue: list[Path] = [Path(p) for p in paths]
+    queue: list[Path] = _expand([Path(p) for p in paths])
     reports: list[dict[str, Any]] = []
     if device_maps:
         for mp in find_device_maps(queue):
