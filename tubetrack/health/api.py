@@ -8,6 +8,7 @@ data).
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from datetime import datetime
@@ -41,7 +42,7 @@ SUMMARY_COLUMNS = (
     "analysed_at_utc", "code_version",
 )
 EXTRA_COLUMNS = (
-    "threshold_pct", "threshold_source", "wear_factor_k", "wear_factor_k_se", "history_days",
+    "threshold_pct", "threshold_source", "wear_rate_pct_per_day", "wear_factor_k", "wear_factor_k_se", "history_days",
     "days_with_current", "pre_log_gap_days", "current_drop_pct", "current_drop_station_ma",
     "arc_rate_recent_per_1000", "arc_trend_p", "ma_miss_fraction", "resistance_change_pct",
     "unforeseeable", "rul_days_p50_wiener", "p_end_of_life_180d_wiener", "kv_model",
@@ -125,6 +126,7 @@ def analyse_frames(
     calibrations: pd.DataFrame | None = None,
     events: pd.DataFrame | None = None,
     analysed_at: datetime | None = None,
+    runner: Callable[[list[tuple], HealthParams], list[dict[str, Any]]] | None = None,
 ) -> HealthResult:
     """Pure fleet analysis on aggregated frames (see :func:`analyse_fleet`).
 
@@ -137,6 +139,10 @@ def analyse_frames(
         removals after ``as_of`` are hidden here).
     as_of
         Analysis date (a day boundary, UTC): only data before it is used.
+    runner
+        Runs the per-tube tasks ``(daily, meta, params, calibrations, events)`` through
+        :func:`tubetrack.health.forecast.analyse_tube_task` and returns their results in order;
+        default: the local process pool (another engine, e.g. Spark, passes its own).
     """
     p = params or HealthParams()
     cut = pd.Timestamp(as_of)
@@ -162,7 +168,7 @@ def analyse_frames(
                 "removal_reason": t.removal_reason if removed else None}
         metas[tid] = meta
         tasks.append((by_tube[tid], meta, p, cal_by.get(tid), ev_by.get(tid)))
-    results = _run(tasks, p)
+    results = (runner or _run)(tasks, p)
     # --- empirical-Bayes prior of the physics calibration factor k, per focal spot
     priors = fleet_k_priors([st for r in results for st in r["states"]], p)
     for r in results:
@@ -191,7 +197,7 @@ def analyse_frames(
             continue
         s = r["summary"].copy()
         for i, st in enumerate(r["states"]):
-            fc = forecast_from_state(st, thr.mean, thr.sd, p)
+            fc = forecast_from_state(st, thr.mean, thr.sd, p, thr.df)
             row = s.index[i]
             for key in ("rul_days_p10", "rul_days_p50", "rul_days_p90", "rul_exposures_p10",
                         "rul_exposures_p50", "rul_exposures_p90", "p_end_of_life_30d",
@@ -201,6 +207,7 @@ def analyse_frames(
             s.loc[row, "diameter_loss_pct_se"] = 100.0 * st["loss_se"]
             s.loc[row, "wear_factor_k"] = st["k"]
             s.loc[row, "wear_factor_k_se"] = float(np.sqrt(st["cov"][1, 1]))
+            s.loc[row, "wear_rate_pct_per_day"] = 100.0 * max(st["k"], 0.0) * st["rate_phys_per_day"]
             w50, w180 = wiener_cross_check(st, thr.mean, p.max_rul_days)
             s.loc[row, "rul_days_p50_wiener"] = w50
             s.loc[row, "p_end_of_life_180d_wiener"] = w180

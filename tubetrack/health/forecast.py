@@ -44,7 +44,7 @@ MIN_K = 0.05
 
 
 def forecast_from_state(state: dict[str, Any], threshold: float, threshold_sd: float,
-                        params: HealthParams) -> dict[str, Any]:
+                        params: HealthParams, threshold_df: float = np.inf) -> dict[str, Any]:
     """Remaining life of one tube and focal spot from its fitted wear state.
 
     Parameters
@@ -54,6 +54,10 @@ def forecast_from_state(state: dict[str, Any], threshold: float, threshold_sd: f
         exposures_per_day [1/day], tube_id, focal_spot.
     threshold, threshold_sd
         End-of-life diameter loss and its spread [1].
+    threshold_df
+        Degrees of freedom of the threshold's predictive distribution: Student t with n - 1
+        degrees of freedom when learned from n failures (the predictive distribution of a new
+        draw from a normal population with estimated mean and variance), normal when infinite.
     params
         Analysis parameters (n_samples, seed, workload_sd, max_rul_days).
 
@@ -74,7 +78,8 @@ def forecast_from_state(state: dict[str, Any], threshold: float, threshold_sd: f
     a, k = ak[:, 0], ak[:, 1]
     pre = rng.normal(0.0, 1.0, n) * state["x_pre_sd"]
     loss_now = a + k * (state["x_now"] + pre)
-    d = rng.normal(threshold, max(threshold_sd, 1e-9), n)
+    z = rng.standard_normal(n) if not np.isfinite(threshold_df) else rng.standard_t(max(threshold_df, 1.0), n)
+    d = threshold + max(threshold_sd, 1e-9) * z
     d = np.maximum(d, 0.005)
     cv = state.get("workload_cv", np.nan)
     # unknown workload pattern (less than two full quarters logged): the wider default

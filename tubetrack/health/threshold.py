@@ -6,7 +6,10 @@ model fitted on its whole history (which ends at the removal) gives the diameter
 pooled as a random-effects model L_i = mu + u_i + e_i, u_i ~ N(0, tau^2) the real tube-to-tube
 spread of the failure point, e_i ~ N(0, s_i^2) the estimation error, with the method-of-moments
 tau^2 of DerSimonian & Laird (1986). The threshold for a new tube is mu with the predictive
-spread sqrt(tau^2 + se(mu)^2), floored at 5 % of mu (a handful of failures never claims a sharp
+spread sqrt(tau^2 + se(mu)^2), floored at 5 % of mu, drawn from a Student t with n - 1 degrees
+of freedom (the predictive distribution of a new member of a normal population whose mean and
+variance are both estimated from n values; Gelman et al., Bayesian Data Analysis, 3rd ed.,
+section 3.2) (a handful of failures never claims a sharp
 threshold). Estimation error is thus not mistaken for tube-to-tube spread. With fewer failures the default (10 % mass loss,
 5.13 % diameter loss) with its assumed spread is used. The spread enters the Monte Carlo of the
 remaining life, so the uncertainty of the threshold widens every interval.
@@ -30,6 +33,8 @@ class Threshold:
         Threshold and its spread [1].
     n_failures
         Filament failures it was learned from (0 = default) [count].
+    df
+        Degrees of freedom of its Student-t predictive distribution (n - 1; inf = normal).
     source
         ``"fleet"`` or ``"default"``.
     """
@@ -38,6 +43,7 @@ class Threshold:
     sd: float
     n_failures: int
     source: str
+    df: float = float("inf")
 
 
 def learn_threshold(
@@ -63,7 +69,7 @@ def learn_threshold(
         f["loss"].to_numpy(float), f["loss_se"].to_numpy(float)
     )
     sd = max(float(np.sqrt(tau**2 + se_mu**2)), 0.05 * mu)
-    return Threshold(mu, sd, n, "fleet")
+    return Threshold(mu, sd, n, "fleet", float(n - 1))
 
 
 def random_effects(y: np.ndarray, se: np.ndarray) -> tuple[float, float, float]:
