@@ -3,6 +3,7 @@ same totals as an uninterrupted run."""
 
 from __future__ import annotations
 
+import json
 import os
 import signal
 import subprocess
@@ -105,3 +106,31 @@ def test_sigkill_mid_file_then_rerun(tmp_path):
     out, err = rerun.communicate(timeout=600)
     assert rerun.returncode == 0, err.decode()
     assert _totals(db) == ref_totals
+
+
+@pytest.mark.slow
+def test_two_ingests_at_once_second_waits_or_fails_cleanly(tmp_path):
+    logs = tmp_path / "logs"
+    _write_logs(logs)
+    db = tmp_path / "shared.duckdb"
+    first = _run(db, logs)
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline and not db.exists():
+        time.sleep(0.05)
+    time.sleep(0.5)
+    second = _run(db, logs)
+    out2, err2 = second.communicate(timeout=600)
+    out1, err1 = first.communicate(timeout=600)
+    assert first.returncode == 0, err1.decode()
+    text = err2.decode()
+    assert "Traceback" not in text
+    if second.returncode == 0:
+        # it waited for the first one, then found every file already ingested
+        assert "is in use by another process; waiting up to" in text
+        assert {o["status"] for o in json.loads(out2)} == {"already_ingested"}
+    else:
+        assert second.returncode == 1
+        assert text.startswith(f"Error: store {db} is in use by another tubetrack process")
+    # nothing counted twice
+    files, counts, _, _ = _totals(db)
+    assert sum(n for _, n in counts) == 2 + N_BIG - 6
