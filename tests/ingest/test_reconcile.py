@@ -220,3 +220,16 @@ def test_systems_calibrations_events_downtime(tmp_path):
     assert (by_kind["downtime"].rows_accepted, by_kind["downtime"].rows_rejected) == (1, 1)
     assert con.execute("SELECT planned, severity FROM downtime").fetchone() == (False, "hard_down")
     assert_reconciles(con)
+
+
+def test_same_times_on_another_system_are_not_duplicates(tmp_path):
+    head = "timestamp_utc,system_id,focal_spot,tube_voltage_kv,tube_current_ma,exposure_time_s\n"
+    rows = "".join(f"2024-01-01T08:0{m}:00Z,{{s}},small,70,100,0.1\n" for m in range(3))
+    (tmp_path / "exposures-1.csv").write_text(head + rows.format(s="R-1"))
+    (tmp_path / "exposures-2.csv").write_text(head + rows.format(s="R-2") + rows.format(s="R-1"))
+    con = store.connect(":memory:")
+    r1, r2 = ingest_paths(con, [tmp_path]).reports
+    assert (r1.rows_accepted, r2.rows_accepted, r2.rows_duplicate) == (3, 3, 3)
+    assert con.execute(
+        "SELECT system_id, count(*) FROM exposures GROUP BY 1 ORDER BY 1"
+    ).fetchall() == [("R-1", 3), ("R-2", 3)]

