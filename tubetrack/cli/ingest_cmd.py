@@ -201,7 +201,7 @@ def _emit_summary(
     for rep in result.reports:
         if rep.status == "failed":
             typer.echo(f"Error: {rep.message}", err=True)
-        elif rep.message and not quiet and rep.status != "ingested":
+        elif rep.message and not quiet:
             typer.echo(f"{rep.path}: {rep.message}", err=True)
     stderr(("dry run, nothing written: " if previews else "") + result.line(), quiet)
 
