@@ -233,3 +233,12 @@ def test_same_times_on_another_system_are_not_duplicates(tmp_path):
     assert con.execute(
         "SELECT system_id, count(*) FROM exposures GROUP BY 1 ORDER BY 1"
     ).fetchall() == [("R-1", 3), ("R-2", 3)]
+
+
+def test_dry_run_preview_includes_malformed_lines():
+    con = store.connect(":memory:")
+    result = ingest_paths(con, [BAD / "exposures_malformed_rows.csv"], dry_run=True, preview_rows=5)
+    ((_, prev),) = result.previews
+    assert prev.rejects["line"].tolist() == [3, 4]
+    assert prev.rejects["reason"].str.startswith("malformed line").all()
+    assert _count(con, "rejects") == 0

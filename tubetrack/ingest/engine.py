@@ -312,7 +312,7 @@ def _ingest_in_txn(
                 "INSERT INTO rejects VALUES (?, ?, ?, ?, ?, ?)",
                 [
                     [file_id, shown, int(r[0]), None, (r[3] or "")[:1000],
-                     csv_reasons.get(str(r[2]), f"malformed line: {str(r[2]).lower()}; fix the line")]
+                     _csv_reason(csv_reasons, r[2])]
                     for r in csv_rej
                 ],
             )
@@ -432,6 +432,18 @@ def _ingest_in_txn(
         ).df()
         rows = rows[[c for c in rows.columns if rows[c].notna().any()]]
         rej = con.execute(f"SELECT * FROM ({reject_sql}) ORDER BY line LIMIT {int(preview_rows)}").df()
+        if csv_rej:
+            import pandas as pd
+
+            extra = pd.DataFrame(
+                [
+                    (int(r[0]), None, (r[3] or "")[:1000], _csv_reason(csv_reasons, r[2]))
+                    for r in csv_rej[: int(preview_rows)]
+                ],
+                columns=["line", "field", "raw_value", "reason"],
+            )
+            rej = pd.concat([rej, extra], ignore_index=True).sort_values("line", kind="stable")
+            rej = rej.head(int(preview_rows)).reset_index(drop=True)
         preview = Preview(rows, rej)
     report = FileReport(
         shown,
@@ -453,3 +465,6 @@ def _stage_columns(con: duckdb.DuckDBPyConnection) -> list[str]:
     return [r[0] for r in con.execute(f"DESCRIBE {STAGE}").fetchall()]
 
 
+def _csv_reason(reasons: dict[str, str], error_type: object) -> str:
+    """Our reason text for one of DuckDB's CSV error types."""
+    return reasons.get(str(error_type), f"malformed line: {str(error_type).lower()}; fix the line")
