@@ -433,9 +433,9 @@ def _chart_block(chart_id: str, spec_json: str, caption: str, images: dict[str, 
             f'<a href="{esc(href)}">{esc(kind.upper())}</a>' for kind, href in images.items()
         )
     return (
-        f'<figure class="chart"><div class="vis" id="{esc(chart_id)}"></div>'
+        f'<figure class="chart"><div class="vis" id="chart-{esc(chart_id)}"></div>'
         f'<figcaption>{esc(caption)}{links}</figcaption></figure>'
-        f'<script type="application/json" data-chart="{esc(chart_id)}">{script_json(spec_json)}</script>'
+        f'<script type="application/json" data-chart="chart-{esc(chart_id)}">{script_json(spec_json)}</script>'
     )
 
 
