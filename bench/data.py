@@ -106,17 +106,31 @@ def _demo_available() -> bool:
 
 
 def _demo_fleet(n_tubes: int, n_exposures: int, seed: int) -> Any:
-    """Size the demo fleet from a small probe, then generate it at full size."""
+    """Size the demo fleet from small probes, then generate it at full size.
+
+    Exposures grow linearly with systems x rate; tubes per system grow with the rate too (more
+    use, more filament failures), so the rate is fixed first from a probe at the target
+    exposures per system, then the number of systems from that probe's tubes per system.
+    """
     from tubetrack.demo import generate_fleet
 
-    years = 3.2
-    probe_systems = 40
-    probe_rate = 20.0
-    probe = generate_fleet(seed=seed, n_systems=probe_systems, years=years, exposures_per_day=probe_rate)
-    tubes_per_system = max(len(probe.tubes) / probe_systems, 1.0)
-    exposures_per_system = max(len(probe.exposures) / probe_systems, 1.0)
-    n_systems = max(2, round(n_tubes / tubes_per_system))
-    rate = probe_rate * (n_exposures / n_systems) / exposures_per_system
+    years, probe_systems = 3.2, 30
+    days = years * 365.25
+    # probe 1: exposures per system per unit of rate
+    rate0 = 10.0
+    p0 = generate_fleet(seed=seed, n_systems=probe_systems, years=years, exposures_per_day=rate0)
+    exp_per_sys_per_rate = max(len(p0.exposures) / probe_systems / rate0, 1e-9)
+    tubes_per_sys = max(len(p0.tubes) / probe_systems, 1.0)
+    rate = rate0
+    for _ in range(3):
+        n_systems = max(2, round(n_tubes / tubes_per_sys))
+        rate = max(0.5, n_exposures / n_systems / exp_per_sys_per_rate)
+        p1 = generate_fleet(seed=seed, n_systems=probe_systems, years=years, exposures_per_day=rate)
+        tubes_per_sys = max(len(p1.tubes) / probe_systems, 1.0)
+        exp_per_sys_per_rate = max(len(p1.exposures) / probe_systems / rate, 1e-9)
+    n_systems = max(2, round(n_tubes / tubes_per_sys))
+    rate = max(0.5, n_exposures / n_systems / exp_per_sys_per_rate)
+    del days
     return generate_fleet(seed=seed, n_systems=n_systems, years=years, exposures_per_day=rate)
 
 
@@ -235,7 +249,7 @@ def _write_open_layout(con: Any, fleet: Any, root: Path) -> tuple[int, int]:
     sel = ", ".join(_iso(c) + f" AS {c}" if c.endswith("_utc") else c for c in tube_cols)
     con.execute(f"COPY (SELECT {sel} FROM f_tubes) TO {_sql_str(open_dir / 'inventory' / 'tubes.csv')} (HEADER)")
     cols = [c for c in EXPOSURE_COLUMNS if c in fleet.exposures.columns]
-    last_day = con.execute("SELECT CAST(max(timestamp_utc) AS DATE) FROM f_exposures").fetchone()[0]
+    last_day = con.execute("SELECT CAST(max(timestamp_utc) AS DATE) FROM f_exposures").fetchall()[0][0]
     con.execute(
         """CREATE TEMP TABLE x AS
         SELECT e.*, s.site FROM f_exposures e LEFT JOIN f_systems s USING (system_id)"""
@@ -269,7 +283,7 @@ def _write_open_layout(con: Any, fleet: Any, root: Path) -> tuple[int, int]:
         "SELECT count(*) FILTER (WHERE CAST(timestamp_utc AS DATE) < ?), "
         "count(*) FILTER (WHERE CAST(timestamp_utc AS DATE) = ?) FROM x",
         [last_day, last_day],
-    ).fetchone()
+    ).fetchall()[0]
     # small tables: one file each per site folder is not needed; they go beside the inventory
     for name in ("calibrations", "events", "downtime"):
         frame = getattr(fleet, name, None)
@@ -327,7 +341,7 @@ def _write_foreign_layout(con: Any, root: Path, max_rows: int) -> tuple[int, int
             TO {_sql_str(root / 'fstaging')}
             (FORMAT csv, HEADER, DELIMITER ';', QUOTE '', PARTITION_BY (_sys, _yr), OVERWRITE_OR_IGNORE)"""
     )
-    rows = con.execute("SELECT count(*) FROM fx").fetchone()[0]
+    rows = con.execute("SELECT count(*) FROM fx").fetchall()[0][0]
     nbytes = 0
     for part in (root / "fstaging").glob("_sys=*/_yr=*"):
         sys_id = part.parent.name.split("=", 1)[1]
@@ -355,7 +369,7 @@ def build_dataset(
     import duckdb
 
     source_wanted = "stand-in" if force_stand_in or not _demo_available() else "demo"
-    request = f"{source_wanted}:{n_tubes}:{n_exposures}:{seed}:{foreign_fraction}"
+    request = f"v2:{source_wanted}:{n_tubes}:{n_exposures}:{seed}:{foreign_fraction}"
     meta = root / "dataset.json"
     if meta.exists():
         ds = Dataset.from_json(meta.read_text())

@@ -375,7 +375,12 @@ def machine_info() -> dict[str, str]:
         commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], capture_output=True, text=True, cwd=REPO_ROOT).stdout.strip()
     except OSError:
         commit = "?"
+    try:
+        load = "%.1f %.1f %.1f" % os.getloadavg()
+    except OSError:
+        load = "?"
     return {
+        "load average at the end (1, 5, 15 min)": load,
         "date (UTC)": dt.datetime.now(dt.UTC).strftime("%Y-%m-%d %H:%M"),
         "cpu": cpu,
         "cores usable": str(usable),
