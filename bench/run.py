@@ -376,7 +376,7 @@ def machine_info() -> dict[str, str]:
     except OSError:
         commit = "?"
     try:
-        load = "%.1f %.1f %.1f" % os.getloadavg()
+        load = " ".join(f"{x:.1f}" for x in os.getloadavg())
     except OSError:
         load = "?"
     return {
