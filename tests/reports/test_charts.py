@@ -335,6 +335,7 @@ def test_spares_uptime_downtime_charts(results):
     up = results["uptime"]
     u = C.spec_of(C.uptime_chart(up, max_systems=4))
     check_common(u, {"uptime"})
+    assert sorted(marks(u)) == ["point", "rule", "tick"]
     rows = u["datasets"]["uptime"]
     assert len(rows) == 4
     worst = (up["availability_pct"] - up["uptime_target_pct"]).nsmallest(4)

@@ -396,7 +396,7 @@ def spares_chart(spares: pd.DataFrame) -> alt.LayerChart:
 
 
 def uptime_chart(uptime: pd.DataFrame, max_systems: int = MAX_SYSTEMS) -> alt.LayerChart:
-    """Availability per system against its contracted target.
+    """Availability per system against its contracted target (a dot-and-gap chart).
 
     Parameters
     ----------
@@ -424,18 +424,25 @@ def uptime_chart(uptime: pd.DataFrame, max_systems: int = MAX_SYSTEMS) -> alt.La
     lo = max(0.0, math.floor(lo - 1.0))
     y = alt.Y("system_id:N", title="System", sort=[str(v) for v in frame["system_id"]])
     x_scale = alt.Scale(domain=[lo, 100])
+    x_title = "Availability over required hours [%]"
+    colour = alt.Color(
+        "versus_target:N",
+        title="against target",
+        scale=alt.Scale(domain=["meets target", "below target", "no target"],
+                        range=[CATEGORICAL_PALETTE[0], CATEGORICAL_PALETTE[5], "#999999"]),
+    )
+    gap = alt.Chart(named("uptime")).mark_rule(strokeWidth=2.5, opacity=0.7).encode(
+        x=alt.X("availability_pct:Q", title=x_title, scale=x_scale), x2="uptime_target_pct:Q", y=y, color=colour
+    )
     bars = (
         alt.Chart(named("uptime"))
-        .mark_bar(opacity=0.85)
+        .mark_point(filled=True, size=60, opacity=1)
         .encode(
-            x=alt.X("availability_pct:Q", title="Availability over required hours [%]", scale=x_scale),
+            x=alt.X("availability_pct:Q", title=x_title, scale=x_scale),
             y=y,
-            color=alt.Color(
-                "versus_target:N",
-                title="against target",
-                scale=alt.Scale(domain=["meets target", "below target", "no target"],
-                                range=[CATEGORICAL_PALETTE[0], CATEGORICAL_PALETTE[5], "#999999"]),
-            ),
+            color=colour,
+            shape=alt.Shape("versus_target:N", title="against target",
+                            scale=alt.Scale(domain=["meets target", "below target", "no target"])),
             tooltip=[
                 alt.Tooltip("system_id:N", title="system"),
                 alt.Tooltip("site:N", title="site"),
@@ -445,11 +452,11 @@ def uptime_chart(uptime: pd.DataFrame, max_systems: int = MAX_SYSTEMS) -> alt.La
             ],
         )
     )
-    ticks = alt.Chart(named("uptime")).mark_tick(color=TARGET_COLOUR, thickness=2, size=16).encode(
-        x=alt.X("uptime_target_pct:Q", title="Availability over required hours [%]", scale=x_scale), y=y
+    ticks = alt.Chart(named("uptime")).mark_tick(color=TARGET_COLOUR, thickness=2, size=14).encode(
+        x=alt.X("uptime_target_pct:Q", title=x_title, scale=x_scale), y=y
     )
-    return alt.layer(bars, ticks).properties(
-        title="Uptime per system against its target (ticks); systems furthest below target first",
+    return alt.layer(gap, ticks, bars).properties(
+        title="Uptime per system (points) against its target (ticks); furthest below target first",
         width=CHART_WIDTH,
         height=alt.Step(16),
         datasets=datasets,
