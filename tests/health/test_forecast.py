@@ -65,3 +65,23 @@ def test_short_history_gives_wide_interval_and_reason(mem_store, sim, load):
     assert s["health_rank"].iloc[0] >= 1
     row = s.iloc[0]
     assert (row["rul_days_p90"] - row["rul_days_p10"]) / max(row["rul_days_p50"], 1) > 0.5
+
+
+def test_tube_without_filament_current_uses_workload_and_physics_only(mem_store, sim, load):
+    # a DICOM-only tube: workload known, filament current never logged
+    exp, _ = sim(4, n_days=200, rate_at_400ma_per_s=RATE)
+    exp["filament_current_a"] = np.nan
+    tubes = pd.DataFrame({"tube_id": ["T1"], "system_id": ["S1"],
+                          "installed_at_utc": [pd.Timestamp("2024-01-01")],
+                          "removed_at_utc": [pd.NaT], "removal_reason": [None]})
+    load(mem_store, exp, tubes)
+    daily = sql.load_daily(mem_store)
+    meta = {"tube_id": "T1", "system_id": "S1", "installed_at_utc": "2024-01-01",
+            "as_of": pd.Timestamp("2024-07-19")}
+    out = analyse_tube(daily, meta, HealthParams(), physics=PowerLawPhysics(RATE))
+    s = assign_levels(out["summary"], 0.0513, 90, 3650)
+    assert "no filament current logged" in s["reason"].iloc[0]
+    st = out["states"][0]
+    # prior-only wear factor (k ~ N(1, 0.5^2)): the loss is the physics prediction, widely uncertain
+    assert st["k"] == pytest.approx(1.0) and np.sqrt(st["cov"][1, 1]) == pytest.approx(0.5)
+    assert s["rul_days_p90"].iloc[0] > 2 * s["rul_days_p10"].iloc[0]

@@ -175,8 +175,8 @@ def analyse_tube(
         kvm = drift.fit_kv_model(dfs, focal, baseline_days=p.baseline_days)
         norm = drift.normalise(dfs, kvm)
         # --- change points on the focal spot's combined series, shifts removed per station
-        base = norm[norm["in_baseline"]]
-        wb = 1.0 / base["se_log"] ** 2
+        base = norm.loc[norm["in_baseline"].to_numpy(bool)]
+        wb = 1.0 / base["se_log"].astype(float) ** 2
         c0 = (base["log_i_norm"] * wb).groupby(
             base["tube_current_ma"]
         ).sum() / wb.groupby(base["tube_current_ma"]).sum()
