@@ -93,9 +93,10 @@ def test_fleet_wear_over_a_month_matches_hkl(small_fleet):
         )
         hot = (w["exposure_time_s"] + w["prep_time_s"]).to_numpy()
         hand = accel * float(np.sum(hkl_relative_diameter_rate(temp, spec.diameter_m) * hot))
-        # tolerance: the diameter ratio moves by loss1 - loss0 (< 1 %) within the month, which
-        # raises temperature and rate by well under 1 %; the demo's g(d) shape is tube-wide (< 0.5 %)
-        assert loss1 - loss0 == pytest.approx(hand, rel=0.02), tube_id
+        # tolerance: the hand sum holds d/d0 at its start-of-month value; within the month the
+        # wire thins by loss1 - loss0 (< 0.3 %), raising the needed temperature and the rate by
+        # < 0.3 %; the demo's tube-wide g(d) shape adds < 0.1 %. Hence 0.5 %.
+        assert loss1 - loss0 == pytest.approx(hand, rel=0.005), tube_id
         checked += 1
         del table
     assert checked >= 3

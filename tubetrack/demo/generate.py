@@ -774,7 +774,7 @@ def _assemble(
     tube = sim["tube_of"][idx]
     ma = programs["tube_current_ma"].to_numpy()[prog]
     kv = programs["tube_voltage_kv"].to_numpy()[prog]
-    focal = programs["focal_spot"].to_numpy()[prog]
+    focal_code = (programs["focal_spot"].to_numpy() == "large").astype(np.int8)[prog]
     t_exp = w["t_exp"][idx]
     arcs = rng.poisson(sim["arc_rate"][idx]).astype(np.int32)
     fil_a = np.round(sim["cur_of"][idx] * (1.0 + rng.normal(0.0, 0.002, n)), 3)
@@ -786,7 +786,7 @@ def _assemble(
             "timestamp_utc": _ts(w["ts_ms"][idx]),
             "system_id": pd.Categorical.from_codes(sys, dtype=sys_cat),
             "tube_id": pd.Categorical.from_codes(tube, dtype=tube_cat),
-            "focal_spot": pd.Categorical(focal, categories=["small", "large"]),
+            "focal_spot": pd.Categorical.from_codes(focal_code, categories=["small", "large"]),
             "tube_voltage_kv": kv,
             "tube_current_ma": ma,
             "tube_current_measured_ma": measured,
@@ -796,7 +796,8 @@ def _assemble(
             "filament_voltage_v": np.full(n, np.nan),
             "prep_time_s": w["prep"][idx],
             "arc_count": arcs,
-        }
+        },
+        copy=False,
     )
     # events ---------------------------------------------------------------------------------
     ev_parts = []
