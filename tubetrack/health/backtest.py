@@ -138,6 +138,8 @@ def tube_cases(summary: pd.DataFrame, cut: pd.Timestamp) -> pd.DataFrame:
             "history_days": g["history_days"].max().to_numpy(),
         }
     )
+    for col in ("diameter_loss_pct", "wear_rate_pct_per_day", "threshold_pct"):
+        out[col] = first[col].to_numpy() if col in first.columns else np.nan
     return out
 
 
