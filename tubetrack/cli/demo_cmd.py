@@ -7,7 +7,14 @@ from typing import Annotated
 
 import typer
 
-from tubetrack.cli.common import FormatOption, OutputFormat, QuietOption, emit, handle_errors, stderr
+from tubetrack.cli.common import (
+    FormatOption,
+    OutputFormat,
+    QuietOption,
+    emit,
+    handle_errors,
+    stderr,
+)
 
 
 def register(app: typer.Typer) -> None:
@@ -57,6 +64,18 @@ def register(app: typer.Typer) -> None:
             }
         )
         emit(frame, fmt)
+        fresh = {p.resolve() for p in paths}
+        stale = sorted(
+            p
+            for p in out.rglob("*")
+            if p.is_file() and p.resolve() not in fresh and "profiles" not in p.relative_to(out).parts
+        )
+        if stale:
+            stderr(
+                f"warning: {len(stale)} older files in {out} were not rewritten by this run "
+                f"(e.g. {stale[0]}); delete them or write to an empty --out folder.",
+                quiet,
+            )
         t = fleet.truth
         stderr(
             f"wrote {len(paths)} files ({frame['bytes'].sum() / 1e6:.2f} MB) to {out}: "
