@@ -11,7 +11,9 @@ Two memory figures are recorded for every step:
     ``/proc`` every 50 ms. A process pool or a Spark JVM shows up here, not in the first figure.
     Sampling can miss a short spike, so this is a lower bound of the true peak.
 
-Wall time is measured around the child with :func:`time.perf_counter`.
+Wall time is measured around the child with :func:`time.perf_counter`; CPU time (user + system,
+the step's processes and the children they waited for) comes from ``/usr/bin/time -v``. On a
+shared machine CPU time is the steadier figure: wall time grows with other users' load.
 """
 
 from __future__ import annotations
@@ -48,6 +50,7 @@ class Measurement:
     tree_rss_mib: float  #: largest sampled sum of resident sets over the process tree [MiB]
     returncode: int
     stderr_tail: str
+    cpu_s: float = float("nan")  #: user + system CPU time of the step's processes [s]
 
 
 def _children_map() -> dict[int, list[int]]:
@@ -152,12 +155,18 @@ def run_measured(
                 out.close()  # type: ignore[union-attr]
         text = err_path.read_text(errors="replace")
         maxrss_kib = 0
+        cpu = float("nan")
         if time_out.exists():
+            user = system = None
             for line in time_out.read_text(errors="replace").splitlines():
                 if "Maximum resident set size" in line:
                     maxrss_kib = int(line.rsplit(":", 1)[1].strip())
-                elif line.startswith("Command exited with non-zero status"):
-                    pass
+                elif "User time (seconds)" in line:
+                    user = float(line.rsplit(":", 1)[1])
+                elif "System time (seconds)" in line:
+                    system = float(line.rsplit(":", 1)[1])
+            if user is not None and system is not None:
+                cpu = user + system
         for line in text.splitlines():
             if line.startswith("TT_MAXRSS_KIB="):
                 maxrss_kib = int(line.split("=", 1)[1])
@@ -169,4 +178,5 @@ def run_measured(
         tree_rss_mib=max(tree_kib, maxrss_kib) / 1024.0,
         returncode=rc,
         stderr_tail=text[-2000:],
+        cpu_s=cpu,
     )

@@ -47,6 +47,7 @@ class Step:
     after: Callable[[], None] | None = None
     available: Callable[[], str | None] = lambda: None  # returns a reason when not available
     repeat: int | None = None
+    heavy: bool = False  #: a whole-fleet analysis: run --repeat-heavy times (default once)
     items: int | None = None  # for a rate column (rows or files per second)
     stdout: Path | None = None
 
@@ -61,6 +62,11 @@ class Result:
     @property
     def wall_s(self) -> float | None:
         ok = [m.wall_s for m in self.runs if m.returncode == 0]
+        return statistics.median(ok) if ok else None
+
+    @property
+    def cpu_s(self) -> float | None:
+        ok = [m.cpu_s for m in self.runs if m.returncode == 0 and m.cpu_s == m.cpu_s]
         return statistics.median(ok) if ok else None
 
     @property
@@ -233,6 +239,7 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
             floor="raw_load",
             target=Target("ratio", 5.0, 2048, "<= 5x floor, peak <= 2 GiB"),
             available=lambda: cli_missing("tubes") or (None if full_db.exists() else "no full store (ingest failed)"),
+            heavy=True,
         ),
         Step(
             "fleet_forecast",
@@ -240,6 +247,7 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
             lambda: [*tt, "fleet", "forecast", "--db", str(full_db), "--format", "csv"],
             floor="raw_load",
             available=lambda: cli_missing("fleet", "forecast") or (None if full_db.exists() else "no full store"),
+            heavy=True,
         ),
         Step(
             "report",
@@ -248,6 +256,7 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
             target=Target("abs_s", 30.0, None, "<= 30 s"),
             prepare=lambda: _rm(report_dir),
             available=lambda: cli_missing("report") or (None if full_db.exists() else "no full store"),
+            heavy=True,
         ),
         Step(
             "dicom",
@@ -271,6 +280,7 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
             "health on the lake, local engine (DuckDB + process pool)",
             lambda: [PY, "-c", engine_code, "local", str(lake)],
             available=lambda: module_missing("tubetrack.engines", "run_health") or (None if lake.exists() else "no lake"),
+            heavy=True,
         ),
         Step(
             "engine_spark",
@@ -278,6 +288,7 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
             lambda: [PY, "-c", engine_code, "spark", str(lake)],
             floor="engine_local",
             available=lambda: module_missing("tubetrack.engines", "run_health") or module_missing("pyspark") or (None if lake.exists() else "no lake"),
+            heavy=True,
         ),
     ]
     return steps
@@ -309,7 +320,7 @@ def _make_dicom(ds: Dataset, out: Path, n: int) -> None:
 # ----------------------------------------------------------------------------- running
 
 
-def run_steps(steps: list[Step], repeat: int, *, only: set[str] | None, log: Callable[[str], None], timeout_s: float) -> list[Result]:
+def run_steps(steps: list[Step], repeat: int, *, only: set[str] | None, log: Callable[[str], None], timeout_s: float, repeat_heavy: int = 1) -> list[Result]:
     results: dict[str, Result] = {}
     for step in steps:
         res = Result(step)
@@ -322,7 +333,7 @@ def run_steps(steps: list[Step], repeat: int, *, only: set[str] | None, log: Cal
             res.status, res.reason = "not available", reason
             log(f"  {step.name:<18} not available: {reason}")
             continue
-        for i in range(step.repeat or repeat):
+        for i in range(step.repeat or (repeat_heavy if step.heavy else repeat)):
             if step.prepare:
                 try:
                     step.prepare()
@@ -331,7 +342,7 @@ def run_steps(steps: list[Step], repeat: int, *, only: set[str] | None, log: Cal
                     break
             m = run_measured(step.argv(), cwd=REPO_ROOT, env=_env(), timeout_s=timeout_s, stdout_path=step.stdout)
             res.runs.append(m)
-            log(f"  {step.name:<18} run {i + 1}: {m.wall_s:8.2f} s  peak {m.peak_rss_mib:7.0f} MiB  tree {m.tree_rss_mib:7.0f} MiB  rc={m.returncode}")
+            log(f"  {step.name:<18} run {i + 1}: {m.wall_s:8.2f} s  cpu {m.cpu_s:8.2f} s  peak {m.peak_rss_mib:7.0f} MiB  tree {m.tree_rss_mib:7.0f} MiB  rc={m.returncode}")
             if m.returncode != 0:
                 res.status = "timeout" if m.returncode == -9 else "failed"
                 res.reason = f"exit code {m.returncode}: " + _last_line(m.stderr_tail)
@@ -425,6 +436,7 @@ def table_rows(results: list[Result]) -> list[list[str]]:
                 s.label,
                 _fmt(wall, ".2f") if r.status == "ok" else r.status,
                 f"{len([m for m in r.runs if m.returncode == 0])}",
+                _fmt(r.cpu_s, ".2f"),
                 _fmt(r.peak_mib, ".0f"),
                 _fmt(r.tree_mib, ".0f"),
                 rate,
@@ -438,12 +450,12 @@ def table_rows(results: list[Result]) -> list[list[str]]:
     return rows
 
 
-HEADER = ["step", "what", "median s", "n", "peak MiB", "tree MiB", "rate", "floor", "floor s", "ratio", "target", "result"]
+HEADER = ["step", "what", "median s", "n", "cpu s", "peak MiB", "tree MiB", "rate", "floor", "floor s", "ratio", "target", "result"]
 
 
 def render_text(rows: list[list[str]]) -> str:
     widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h) for i, h in enumerate(HEADER)]
-    show = [0, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11]
+    show = [0, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12]
     line = "  ".join(HEADER[i].ljust(widths[i]) for i in show)
     out = [line, "-" * len(line)]
     out += ["  ".join(r[i].ljust(widths[i]) for i in show) for r in rows]
@@ -467,7 +479,8 @@ def render_markdown(ds: Dataset, results: list[Result], info: dict[str, str], ar
     md += ["| " + " | ".join(c.replace("|", "\\|") for c in r) + " |" for r in rows]
     md += [
         "",
-        "Figures: median wall time over the successful runs (`n`); `peak MiB` is the largest single "
+        "Figures: median wall time over the successful runs (`n`); `cpu s` the median user + system "
+        "CPU time of the step's processes (steadier than wall time on a shared machine); `peak MiB` is the largest single "
         "process (ru_maxrss via `/usr/bin/time -v`), `tree MiB` the largest sampled sum over the "
         "step's process tree (worker pools, Spark's JVM). `ratio` = median / floor median, measured in "
         "this run on the same files.",
@@ -505,6 +518,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--tubes", type=int, default=None, help="Fleet size [tubes]. Default 5,000 (300 with --small).")
     ap.add_argument("--exposures", type=int, default=None, help="Exposures in the full load [rows]. Default 10,000,000 (500,000 with --small).")
     ap.add_argument("--repeat", type=int, default=None, help="Runs per step; the median is reported. Default 3 (2 for the full size).")
+    ap.add_argument("--repeat-heavy", type=int, default=1, help="Runs of the whole-fleet analyses (tubes, fleet forecast, report, engines). Default 1.")
     ap.add_argument("--data", type=Path, default=REPO_ROOT / "bench" / "data", help="Folder for generated data (git-ignored). Default bench/data.")
     ap.add_argument("--results", type=Path, default=REPO_ROOT / "bench" / "RESULTS.md", help="Markdown results file. Default bench/RESULTS.md.")
     ap.add_argument("--steps", default="", help="Comma-separated step names to run (default all).")
@@ -532,7 +546,7 @@ def main(argv: list[str] | None = None) -> int:
     quiet = ["--quiet"] if cli_has_option("--quiet", "ingest") else []
     steps = build_steps(ds, work, quiet_flag=quiet)
     only = {s.strip() for s in args.steps.split(",") if s.strip()} or None
-    results = run_steps(steps, repeat, only=only, log=log, timeout_s=args.timeout)
+    results = run_steps(steps, repeat, only=only, log=log, timeout_s=args.timeout, repeat_heavy=args.repeat_heavy)
     rows = table_rows(results)
     print(render_text(rows))
     total = time.perf_counter() - t0
