@@ -219,3 +219,19 @@ def test_dst_and_month_end_downtime_present():
     ends = dt["end_utc"].map(lambda t: t.astimezone(BERLIN).utcoffset())
     assert (starts != ends).any()
     assert set(starts) <= {timedelta(hours=1), timedelta(hours=2)}
+
+
+def test_other_formats_carry_the_same_exposures(tmp_path):
+    from tubetrack.demo import generate_fleet, write_sample_logs
+
+    fleet = generate_fleet(seed=5, n_systems=3, years=0.3)
+    paths = write_sample_logs(fleet, tmp_path, formats=("csv", "parquet"), bad_rows=False, dicom=False)
+    csvs = sorted(p for p in paths if p.name.startswith("exposures-") and p.suffix == ".csv")
+    assert csvs
+    for c in csvs:
+        a = pd.read_csv(c)
+        b = pd.read_parquet(c.with_suffix(".parquet"))
+        assert len(a) == len(b) > 0
+        np.testing.assert_allclose(a["filament_current_a"], b["filament_current_a"])
+        np.testing.assert_allclose(a["tube_voltage_kv"], b["tube_voltage_kv"])
+        assert (pd.to_datetime(a["timestamp_utc"]).dt.tz_convert(None) == b["timestamp_utc"]).all()
