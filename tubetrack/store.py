@@ -319,13 +319,25 @@ def _has_icu(con: duckdb.DuckDBPyConnection) -> bool:
 
 def schema_version(con: duckdb.DuckDBPyConnection) -> int:
     """Current schema version of an open store (0 for an empty file)."""
-    exists = con.execute(
-        "SELECT count(*) FROM information_schema.tables WHERE table_name = 'schema_version'"
-    ).fetchone()
-    if not exists or exists[0] == 0:
+    # fetchall(), not fetchone(): duckdb 2 keeps a half-read result open, which blocks a
+    # later con.register() on the same connection.
+    exists = _one(
+        con,
+        "SELECT count(*) FROM information_schema.tables "
+        "WHERE table_name = 'schema_version'",
+    )
+    if not exists:
         return 0
-    row = con.execute("SELECT max(version) FROM schema_version").fetchone()
-    return int(row[0]) if row and row[0] is not None else 0
+    version = _one(con, "SELECT max(version) FROM schema_version")
+    return int(version) if version is not None else 0
+
+
+def _one(
+    con: duckdb.DuckDBPyConnection, sql: str, params: list[Any] | None = None
+) -> Any:
+    """First column of the first row of ``sql`` (fully fetched), or None."""
+    rows = con.execute(sql, params or []).fetchall()
+    return rows[0][0] if rows else None
 
 
 def _check_version(con: duckdb.DuckDBPyConnection, target: str) -> None:
@@ -349,7 +361,8 @@ def migrate(con: duckdb.DuckDBPyConnection) -> int:
         try:
             con.execute(m.sql)
             con.execute(
-                "INSERT INTO schema_version VALUES (?, ?, ?)", [m.version, utcnow(), __version__]
+                "INSERT INTO schema_version VALUES (?, ?, ?)",
+                [m.version, utcnow(), __version__],
             )
             con.execute("COMMIT")
         except Exception:
@@ -393,13 +406,17 @@ def write_results(
     analysis leaves the previous results, never a half-written table. Returns the run id.
     """
     if not _IDENT.match(table) or not table.startswith("result_"):
-        raise ValueError(f"results table name must look like result_<name>, got {table!r}")
+        raise ValueError(
+            f"results table name must look like result_<name>, got {table!r}"
+        )
     started = started_at or utcnow()
     run_id = f"{kind}-{started:%Y%m%dT%H%M%S%f}"
     con.register("_tt_results_frame", frame)
     try:
         with transaction(con):
-            con.execute(f"CREATE OR REPLACE TABLE {table} AS SELECT * FROM _tt_results_frame")
+            con.execute(
+                f"CREATE OR REPLACE TABLE {table} AS SELECT * FROM _tt_results_frame"
+            )
             con.execute(
                 "INSERT INTO analysis_runs VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 [
@@ -423,10 +440,12 @@ def read_results(con: duckdb.DuckDBPyConnection, table: str) -> pd.DataFrame:
     """Read a results table written by :func:`write_results`."""
     if not _IDENT.match(table):
         raise ValueError(f"bad table name {table!r}")
-    exists = con.execute(
-        "SELECT count(*) FROM information_schema.tables WHERE table_name = ?", [table]
-    ).fetchone()
-    if not exists or not exists[0]:
+    exists = _one(
+        con,
+        "SELECT count(*) FROM information_schema.tables WHERE table_name = ?",
+        [table],
+    )
+    if not exists:
         raise NotFoundError(f"no stored results {table}; run the analysis first.")
     return con.execute(f"SELECT * FROM {table}").df()
 
@@ -452,7 +471,11 @@ def load_downtime(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
     return con.execute("SELECT * FROM downtime ORDER BY system_id, start_utc").df()
 
 
-def data_span(con: duckdb.DuckDBPyConnection) -> tuple[datetime | None, datetime | None]:
+def data_span(
+    con: duckdb.DuckDBPyConnection,
+) -> tuple[datetime | None, datetime | None]:
     """First and last exposure time in the store (UTC), or (None, None) when empty."""
-    row = con.execute("SELECT min(timestamp_utc), max(timestamp_utc) FROM exposures").fetchone()
-    return (row[0], row[1]) if row else (None, None)
+    rows = con.execute(
+        "SELECT min(timestamp_utc), max(timestamp_utc) FROM exposures"
+    ).fetchall()
+    return (rows[0][0], rows[0][1]) if rows else (None, None)
