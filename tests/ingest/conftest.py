@@ -9,7 +9,9 @@ import pytest
 DATA = Path(__file__).resolve().parents[1] / "data"
 BAD = DATA / "bad"
 PROFILES = DATA / "profiles"
-HARROWGATE_PROFILE = Path(__file__).resolve().parents[2] / "sample_logs" / "profiles" / "harrowgate.toml"
+HARROWGATE_PROFILE = (
+    Path(__file__).resolve().parents[2] / "sample_logs" / "profiles" / "harrowgate.toml"
+)
 
 
 @pytest.fixture

@@ -42,15 +42,25 @@ def test_ingest_json_output_is_one_object_per_file(tmp_path):
     assert res.stderr.strip().endswith(
         "1 files (1 ingested): rows read 10 = accepted 10 + rejected 0 + duplicate 0"
     )
-    again = json.loads(_ingest(db, "-f", "json", "-p", HARROWGATE_PROFILE, FIXTURE).stdout)
+    again = json.loads(
+        _ingest(db, "-f", "json", "-p", HARROWGATE_PROFILE, FIXTURE).stdout
+    )
     assert again[0]["status"] == "already_ingested"
 
 
 def test_ingest_csv_and_quiet(tmp_path):
-    res = _ingest(tmp_path / "s.duckdb", "--format", "csv", "--quiet", BAD / "exposures_text_in_numeric.csv")
+    res = _ingest(
+        tmp_path / "s.duckdb",
+        "--format",
+        "csv",
+        "--quiet",
+        BAD / "exposures_text_in_numeric.csv",
+    )
     assert res.exit_code == 0
     rows = list(csv.DictReader(io.StringIO(res.stdout)))
-    assert [(r["rows_read"], r["rows_accepted"], r["rows_rejected"]) for r in rows] == [("3", "1", "2")]
+    assert [(r["rows_read"], r["rows_accepted"], r["rows_rejected"]) for r in rows] == [
+        ("3", "1", "2")
+    ]
     assert res.stderr == ""
 
 
@@ -71,7 +81,19 @@ def test_dry_run_shows_rows_and_rejects_and_writes_nothing(tmp_path):
 
 def test_peek_with_profile_shows_utc_rows(tmp_path):
     res = runner.invoke(
-        app, ["peek", str(FIXTURE), "--profile", "harrowgate", "-n", "2", "-f", "json", "--db", str(tmp_path / "x.duckdb")]
+        app,
+        [
+            "peek",
+            str(FIXTURE),
+            "--profile",
+            "harrowgate",
+            "-n",
+            "2",
+            "-f",
+            "json",
+            "--db",
+            str(tmp_path / "x.duckdb"),
+        ],
     )
     assert res.exit_code == 0, res.output
     (out,) = json.loads(res.stdout)
@@ -84,7 +106,9 @@ def test_peek_with_profile_shows_utc_rows(tmp_path):
 
 def test_profiles_lists_builtin_and_folder_profiles(tmp_path):
     (tmp_path / "profiles").mkdir()
-    (tmp_path / "profiles" / "site.toml").write_text('name = "site-x"\nkind = "events"\n')
+    (tmp_path / "profiles" / "site.toml").write_text(
+        'name = "site-x"\nkind = "events"\n'
+    )
     res = runner.invoke(app, ["profiles", str(tmp_path), "-f", "json"])
     assert res.exit_code == 0, res.output
     names = {p["name"]: p["kind"] for p in json.loads(res.stdout)}
@@ -99,7 +123,10 @@ def test_unknown_kind_is_a_usage_error(tmp_path):
 def test_missing_path_is_an_error(tmp_path):
     res = _ingest(tmp_path / "s.duckdb", tmp_path / "nope")
     assert res.exit_code == 1
-    assert res.stderr.strip() == f"Error: {tmp_path / 'nope'}: no such file or folder. Check the path."
+    assert (
+        res.stderr.strip()
+        == f"Error: {tmp_path / 'nope'}: no such file or folder. Check the path."
+    )
 
 
 def test_status_json_has_every_section(tmp_path):
@@ -129,13 +156,28 @@ def test_status_json_has_every_section(tmp_path):
         "unmapped_dicom_devices",
     ]
     ov = st["overview"]
-    assert (ov["systems"], ov["tubes_active"], ov["tubes_removed"], ov["exposures"]) == (2, 1, 1, 11)
+    assert (
+        ov["systems"],
+        ov["tubes_active"],
+        ov["tubes_removed"],
+        ov["exposures"],
+    ) == (2, 1, 1, 11)
     assert ov["first_exposure_utc"] == "2024-01-15T08:30:00"
     months = {m["month"]: m["exposures"] for m in st["exposures_by_month"]}
     assert months == {"2024-01": 1, "2024-03": 3, "2024-07": 1, "2024-10": 6}
     assert st["rejects_by_reason"] == [
-        {"reason": "not a number", "field": "tube_current_ma", "rejects": 1, "files": 1},
-        {"reason": "not a number", "field": "tube_voltage_kv", "rejects": 1, "files": 1},
+        {
+            "reason": "not a number",
+            "field": "tube_current_ma",
+            "rejects": 1,
+            "files": 1,
+        },
+        {
+            "reason": "not a number",
+            "field": "tube_voltage_kv",
+            "rejects": 1,
+            "files": 1,
+        },
     ]
     assert st["unmapped_dicom_devices"] == []
     table = runner.invoke(app, ["status", "--db", str(db)])
@@ -143,10 +185,17 @@ def test_status_json_has_every_section(tmp_path):
     long = runner.invoke(app, ["status", "--db", str(db), "-f", "csv"])
     rows = list(csv.DictReader(io.StringIO(long.stdout)))
     assert {"section", "item", "metric", "value"} == set(rows[0])
-    assert {"section": "overview", "item": "", "metric": "exposures", "value": "11"} in rows
+    assert {
+        "section": "overview",
+        "item": "",
+        "metric": "exposures",
+        "value": "11",
+    } in rows
 
 
 def test_status_without_store_is_a_clear_error(tmp_path):
     res = runner.invoke(app, ["status", "--db", str(tmp_path / "none.duckdb")])
     assert res.exit_code == 1
-    assert res.stderr.startswith(f"Error: store {tmp_path / 'none.duckdb'} does not exist.")
+    assert res.stderr.startswith(
+        f"Error: store {tmp_path / 'none.duckdb'} does not exist."
+    )

@@ -19,11 +19,47 @@ FORMATS = DATA / "formats"
 # Hand-written fixture rows (tests/data/formats/exposures-own.*), expected canonical values.
 EXPECTED = [
     # timestamp_utc, system_id, tube_id, focal_spot, kV, mA, s, mAs, filament A, prep s, arcs, line
-    (datetime(2024, 3, 5, 8, 15, 2, 123000), "R-01", "T-100", "small", 70.0, 200.0, 0.1, 20.0, 4.5, 0.8, 0),
+    (
+        datetime(2024, 3, 5, 8, 15, 2, 123000),
+        "R-01",
+        "T-100",
+        "small",
+        70.0,
+        200.0,
+        0.1,
+        20.0,
+        4.5,
+        0.8,
+        0,
+    ),
     # +01:00 offset -> 08:00 UTC; mAs given, time derived = 20 mAs / 400 mA = 0.05 s
-    (datetime(2024, 3, 5, 8, 0, 0), "R-01", None, "large", 81.0, 400.0, 0.05, 20.0, 5.25, 1.2, 2),
+    (
+        datetime(2024, 3, 5, 8, 0, 0),
+        "R-01",
+        None,
+        "large",
+        81.0,
+        400.0,
+        0.05,
+        20.0,
+        5.25,
+        1.2,
+        2,
+    ),
     # no offset = UTC; "LARGE" normalised; mAs derived = 630 mA x 0.016 s = 10.08 mAs; arcs empty -> 0
-    (datetime(2024, 3, 5, 10, 30, 0), "R-02", "T-200", "large", 125.0, 630.0, 0.016, 10.08, 5.75, None, 0),
+    (
+        datetime(2024, 3, 5, 10, 30, 0),
+        "R-02",
+        "T-200",
+        "large",
+        125.0,
+        630.0,
+        0.016,
+        10.08,
+        5.75,
+        None,
+        0,
+    ),
 ]
 
 COLS = (
@@ -33,15 +69,18 @@ COLS = (
 
 
 def _rows(con):
-    rows = con.execute(f"SELECT {COLS} FROM exposures ORDER BY system_id, timestamp_utc").fetchall()
-    return [
-        tuple(round(v, 9) if isinstance(v, float) else v for v in r) for r in rows
-    ]
+    rows = con.execute(
+        f"SELECT {COLS} FROM exposures ORDER BY system_id, timestamp_utc"
+    ).fetchall()
+    return [tuple(round(v, 9) if isinstance(v, float) else v for v in r) for r in rows]
 
 
 def _expected():
     return sorted(
-        [tuple(round(v, 9) if isinstance(v, float) else v for v in r) for r in EXPECTED],
+        [
+            tuple(round(v, 9) if isinstance(v, float) else v for v in r)
+            for r in EXPECTED
+        ],
         key=lambda r: (r[1], r[0]),
     )
 
@@ -52,7 +91,9 @@ def _parquet(tmp: Path) -> Path:
     out = tmp / "exposures-own.parquet"
     con = duckdb.connect()
     con.execute(
-        "COPY (SELECT * FROM read_csv(?, all_varchar=true)) TO '" + str(out).replace("'", "''") + "' (FORMAT parquet)",
+        "COPY (SELECT * FROM read_csv(?, all_varchar=true)) TO '"
+        + str(out).replace("'", "''")
+        + "' (FORMAT parquet)",
         [str(FORMATS / "exposures-own.csv")],
     )
     con.close()
@@ -73,7 +114,12 @@ def _pipe(tmp: Path) -> Path:
 
 def _semicolon_crlf(tmp: Path) -> Path:
     out = tmp / "exposures-own-crlf.txt"
-    out.write_bytes((FORMATS / "exposures-own.csv").read_bytes().replace(b",", b";").replace(b"\n", b"\r\n"))
+    out.write_bytes(
+        (FORMATS / "exposures-own.csv")
+        .read_bytes()
+        .replace(b",", b";")
+        .replace(b"\n", b"\r\n")
+    )
     return out
 
 
@@ -96,13 +142,24 @@ def test_each_format_gives_the_same_canonical_rows(fmt, tmp_path):
     con = store.connect(":memory:")
     result = ingest_paths(con, [path])
     (rep,) = result.reports
-    assert (rep.status, rep.kind, rep.rows_read, rep.rows_accepted, rep.rows_rejected) == (
-        "ingested", "exposures", 3, 3, 0
-    ), rep.message
+    assert (
+        rep.status,
+        rep.kind,
+        rep.rows_read,
+        rep.rows_accepted,
+        rep.rows_rejected,
+    ) == ("ingested", "exposures", 3, 3, 0), rep.message
     assert _rows(con) == _expected()
-    lines = [r[0] for r in con.execute("SELECT source_line FROM exposures ORDER BY source_line").fetchall()]
+    lines = [
+        r[0]
+        for r in con.execute(
+            "SELECT source_line FROM exposures ORDER BY source_line"
+        ).fetchall()
+    ]
     # CSV: header is line 1; JSON Lines and Parquet have no header (row 1 = line 1)
-    assert lines == ([2, 3, 4] if fmt not in ("jsonl", "jsonl.gz", "parquet") else [1, 2, 3])
+    assert lines == (
+        [2, 3, 4] if fmt not in ("jsonl", "jsonl.gz", "parquet") else [1, 2, 3]
+    )
 
 
 def test_folder_is_walked_recursively_and_truth_and_readme_skipped(tmp_path):
@@ -135,4 +192,6 @@ def test_kind_option_decides_for_an_unnamed_file(tmp_path):
     con = store.connect(":memory:")
     (rep,) = ingest_paths(con, [path], kind="calibrations").reports
     assert (rep.kind, rep.rows_accepted) == ("calibrations", 1)
-    assert con.execute("SELECT filament_current_a FROM calibrations").fetchone()[0] == 4.25
+    assert (
+        con.execute("SELECT filament_current_a FROM calibrations").fetchone()[0] == 4.25
+    )

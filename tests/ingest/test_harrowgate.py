@@ -82,9 +82,13 @@ def test_profile_reads_the_foreign_layout_exactly():
     con = store.connect(":memory:")
     result = ingest_paths(con, [FIXTURE], profile=HARROWGATE_PROFILE)
     (rep,) = result.reports
-    assert (rep.status, rep.profile, rep.rows_read, rep.rows_accepted, rep.rows_rejected) == (
-        "ingested", "harrowgate", 10, 10, 0
-    )
+    assert (
+        rep.status,
+        rep.profile,
+        rep.rows_read,
+        rep.rows_accepted,
+        rep.rows_rejected,
+    ) == ("ingested", "harrowgate", 10, 10, 0)
     _check(_canonical(con))
 
 
@@ -93,7 +97,9 @@ def test_folder_profiles_are_applied_by_glob_and_gzip_works(tmp_path):
     (root / "harrowgate").mkdir(parents=True)
     (root / "profiles").mkdir()
     shutil.copy(HARROWGATE_PROFILE, root / "profiles")
-    (root / "harrowgate" / (FIXTURE.name + ".gz")).write_bytes(gzip.compress(FIXTURE.read_bytes()))
+    (root / "harrowgate" / (FIXTURE.name + ".gz")).write_bytes(
+        gzip.compress(FIXTURE.read_bytes())
+    )
     con = store.connect(":memory:")
     (rep,) = ingest_paths(con, [root]).reports
     assert (rep.profile, rep.rows_accepted) == ("harrowgate", 10)
@@ -122,7 +128,12 @@ def test_spring_gap_rejected_and_autumn_ambiguity_by_policy():
             "clock or the row",
         )
     ]
-    got = [r[0] for r in con.execute("SELECT timestamp_utc FROM exposures ORDER BY source_line").fetchall()]
+    got = [
+        r[0]
+        for r in con.execute(
+            "SELECT timestamp_utc FROM exposures ORDER BY source_line"
+        ).fetchall()
+    ]
     assert got == [
         utc(2024, 3, 31, 1, 59),
         utc(2024, 3, 31, 3, 10),
@@ -134,7 +145,9 @@ def test_spring_gap_rejected_and_autumn_ambiguity_by_policy():
 def test_ambiguous_policy_reject_names_the_row():
     path = BAD / "genlog_HG-T02_2024.csv"
     con = store.connect(":memory:")
-    (rep,) = ingest_paths(con, [path], profile=PROFILES / "harrowgate_ambiguous_reject.toml").reports
+    (rep,) = ingest_paths(
+        con, [path], profile=PROFILES / "harrowgate_ambiguous_reject.toml"
+    ).reports
     assert (rep.rows_read, rep.rows_accepted, rep.rows_rejected) == (5, 3, 2)
     assert rejects(con)[1] == (
         5,
@@ -145,9 +158,7 @@ def test_ambiguous_policy_reject_names_the_row():
     )
 
 
-@pytest.mark.parametrize(
-    ("policy", "fold"), [("earlier", 0), ("later", 1)]
-)
+@pytest.mark.parametrize(("policy", "fold"), [("earlier", 0), ("later", 1)])
 def test_ambiguous_policy_earlier_later(policy, fold, tmp_path):
     prof = tmp_path / "p.toml"
     prof.write_text(
@@ -157,7 +168,9 @@ def test_ambiguous_policy_earlier_later(policy, fold, tmp_path):
     )
     con = store.connect(":memory:")
     ingest_paths(con, [BAD / "genlog_HG-T02_2024.csv"], profile=prof)
-    got = con.execute("SELECT timestamp_utc FROM exposures WHERE source_line = 5").fetchone()[0]
+    got = con.execute(
+        "SELECT timestamp_utc FROM exposures WHERE source_line = 5"
+    ).fetchone()[0]
     assert got == utc(2024, 10, 27, 2, 30, fold=fold)
 
 
@@ -185,7 +198,12 @@ def test_other_zone_new_york_matches_zoneinfo(tmp_path):
     def u(*a, fold=0):
         return datetime(*a, tzinfo=ny, fold=fold).astimezone(UTC).replace(tzinfo=None)
 
-    got = [r[0] for r in con.execute("SELECT timestamp_utc FROM exposures ORDER BY source_line").fetchall()]
+    got = [
+        r[0]
+        for r in con.execute(
+            "SELECT timestamp_utc FROM exposures ORDER BY source_line"
+        ).fetchall()
+    ]
     assert got == [
         u(2024, 3, 10, 1, 59, 59),
         u(2024, 3, 10, 3, 0),
@@ -193,4 +211,6 @@ def test_other_zone_new_york_matches_zoneinfo(tmp_path):
         u(2024, 11, 3, 1, 10, fold=1),
         u(2024, 11, 3, 2, 0),
     ]
-    assert con.execute("SELECT min(exposure_time_s), max(exposure_time_s) FROM exposures").fetchone() == (0.01, 0.01)
+    assert con.execute(
+        "SELECT min(exposure_time_s), max(exposure_time_s) FROM exposures"
+    ).fetchone() == (0.01, 0.01)

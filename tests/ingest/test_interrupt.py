@@ -44,7 +44,18 @@ def _write_logs(root: Path) -> None:
 def _run(db: Path, logs: Path) -> subprocess.Popen:
     env = dict(os.environ, PYTHONUNBUFFERED="1")
     return subprocess.Popen(
-        [sys.executable, "-m", "tubetrack", "ingest", "--db", str(db), "--quiet", "--format", "json", str(logs)],
+        [
+            sys.executable,
+            "-m",
+            "tubetrack",
+            "ingest",
+            "--db",
+            str(db),
+            "--quiet",
+            "--format",
+            "json",
+            str(logs),
+        ],
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
         env=env,
@@ -90,7 +101,9 @@ def test_sigkill_mid_file_then_rerun(tmp_path):
     while time.monotonic() < deadline and not db.exists():
         time.sleep(0.05)
     time.sleep(1.5)
-    assert proc.poll() is None, "ingest finished before it could be killed; make the file bigger"
+    assert proc.poll() is None, (
+        "ingest finished before it could be killed; make the file bigger"
+    )
     os.kill(proc.pid, signal.SIGKILL)
     proc.wait(timeout=60)
     assert proc.returncode == -signal.SIGKILL
@@ -130,7 +143,9 @@ def test_two_ingests_at_once_second_waits_or_fails_cleanly(tmp_path):
         assert {o["status"] for o in json.loads(out2)} == {"already_ingested"}
     else:
         assert second.returncode == 1
-        assert text.startswith(f"Error: store {db} is in use by another tubetrack process")
+        assert text.startswith(
+            f"Error: store {db} is in use by another tubetrack process"
+        )
     # nothing counted twice
     files, counts, _, _ = _totals(db)
     assert sum(n for _, n in counts) == 2 + N_BIG - 6

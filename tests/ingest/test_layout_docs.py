@@ -19,7 +19,9 @@ def _section(text: str, title: str) -> str:
 
 def test_valid_range_table_matches_validate_py():
     text = (DOCS / "log-layout.md").read_text(encoding="utf-8")
-    sec = _section(text, "Valid ranges (one table, as in `tubetrack/ingest/validate.py`)")
+    sec = _section(
+        text, "Valid ranges (one table, as in `tubetrack/ingest/validate.py`)"
+    )
     rows = {}
     for line in sec.splitlines():
         cells = [c.strip() for c in line.strip().strip("|").split("|")]

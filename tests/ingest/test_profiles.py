@@ -48,7 +48,10 @@ def test_invalid_profile_names_file_key_value_and_allowed(name, message):
 
 
 def test_unknown_column_lists_the_kinds_columns():
-    with pytest.raises(ProfileError, match=r"columns\.kv = 'kVp' is not a column of exposures; allowed: timestamp_utc, system_id"):
+    with pytest.raises(
+        ProfileError,
+        match=r"columns\.kv = 'kVp' is not a column of exposures; allowed: timestamp_utc, system_id",
+    ):
         load_profile(PROFILES / "bad_column.toml")
 
 
@@ -66,15 +69,42 @@ def test_missing_profile_lists_builtins(tmp_path):
 @pytest.mark.parametrize(
     ("data", "fragment"),
     [
-        ({"kind": "xrays"}, "kind = 'xrays' is not a table kind; allowed: exposures, calibrations"),
-        ({"kind": "exposures", "decimal": ";"}, "decimal = ';' is not a decimal mark; allowed: ., ,"),
-        ({"kind": "exposures", "time": {"ambiguous": "guess"}}, "allowed: order, earlier, later, reject"),
-        ({"kind": "exposures", "time": {"formats": ["dd.mm.yyyy"]}}, "time.formats = 'dd.mm.yyyy' is not a strptime format"),
-        ({"kind": "exposures", "values": {"focal_spot": {"F1": "tiny"}}}, "values.focal_spot.F1 = 'tiny' is not a focal_spot; allowed: small, large"),
-        ({"kind": "exposures", "units": {"system_id": "A"}}, "units.system_id = 'A' names a column without a unit"),
-        ({"kind": "exposures", "filename": {"pattern": "(?P<bogus>x)"}}, "captures group 'bogus', not a column of exposures"),
-        ({"kind": "exposures", "columns": {"system_id": ["a", "b"]}}, "may be a list (joined with a space) only for a timestamp column"),
-        ({"kind": "exposures", "encoding": "ebcdic"}, "encoding = 'ebcdic' is not a supported encoding"),
+        (
+            {"kind": "xrays"},
+            "kind = 'xrays' is not a table kind; allowed: exposures, calibrations",
+        ),
+        (
+            {"kind": "exposures", "decimal": ";"},
+            "decimal = ';' is not a decimal mark; allowed: ., ,",
+        ),
+        (
+            {"kind": "exposures", "time": {"ambiguous": "guess"}},
+            "allowed: order, earlier, later, reject",
+        ),
+        (
+            {"kind": "exposures", "time": {"formats": ["dd.mm.yyyy"]}},
+            "time.formats = 'dd.mm.yyyy' is not a strptime format",
+        ),
+        (
+            {"kind": "exposures", "values": {"focal_spot": {"F1": "tiny"}}},
+            "values.focal_spot.F1 = 'tiny' is not a focal_spot; allowed: small, large",
+        ),
+        (
+            {"kind": "exposures", "units": {"system_id": "A"}},
+            "units.system_id = 'A' names a column without a unit",
+        ),
+        (
+            {"kind": "exposures", "filename": {"pattern": "(?P<bogus>x)"}},
+            "captures group 'bogus', not a column of exposures",
+        ),
+        (
+            {"kind": "exposures", "columns": {"system_id": ["a", "b"]}},
+            "may be a list (joined with a space) only for a timestamp column",
+        ),
+        (
+            {"kind": "exposures", "encoding": "ebcdic"},
+            "encoding = 'ebcdic' is not a supported encoding",
+        ),
     ],
 )
 def test_parse_profile_rejects(data, fragment):
@@ -87,7 +117,10 @@ def test_harrowgate_profile_is_the_builtin_one_and_valid():
     shipped = builtin_profiles()["harrowgate"]
     sample = load_profile(HARROWGATE_PROFILE)
     assert (sample.columns, sample.units, sample.values, sample.timezone) == (
-        shipped.columns, shipped.units, shipped.values, shipped.timezone
+        shipped.columns,
+        shipped.units,
+        shipped.values,
+        shipped.timezone,
     )
     assert sample.unit_factor("filament_current_a") == 0.001
     assert sample.matches("harrowgate/genlog_HVC-R01_2024.csv.gz")
@@ -125,7 +158,7 @@ def test_profile_strings_are_data_not_sql(tmp_path):
         'name = "hostile"\nkind = "exposures"\n'
         '[columns]\ntimestamp_utc = "t\\"; DROP TABLE exposures; --"\nsystem_id = "sys"\n'
         'focal_spot = "f"\ntube_voltage_kv = "kv"\ntube_current_ma = "ma"\nexposure_time_s = "s"\n'
-        "[values.focal_spot]\n\"x'); DELETE FROM systems; --\" = \"small\"\n"
+        '[values.focal_spot]\n"x\'); DELETE FROM systems; --" = "small"\n'
     )
     f = tmp_path / "h.csv"
     f.write_text(
@@ -135,4 +168,7 @@ def test_profile_strings_are_data_not_sql(tmp_path):
     con = store.connect(":memory:")
     (rep,) = ingest_paths(con, [f], profile=prof).reports
     assert rep.rows_accepted == 1, rep.message
-    assert con.execute("SELECT system_id, focal_spot FROM exposures").fetchone() == ("<b>R1</b>", "small")
+    assert con.execute("SELECT system_id, focal_spot FROM exposures").fetchone() == (
+        "<b>R1</b>",
+        "small",
+    )

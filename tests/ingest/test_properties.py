@@ -17,8 +17,13 @@ from tubetrack import store
 from tubetrack.ingest import ingest_paths
 
 COLS = [
-    "timestamp_utc", "system_id", "focal_spot", "tube_voltage_kv", "tube_current_ma",
-    "exposure_time_s", "filament_current_a",
+    "timestamp_utc",
+    "system_id",
+    "focal_spot",
+    "tube_voltage_kv",
+    "tube_current_ma",
+    "exposure_time_s",
+    "filament_current_a",
 ]
 BASE = datetime(2023, 5, 1, 6, 0, 0)
 
@@ -38,7 +43,9 @@ def valid_row(draw, i):
         "tube_voltage_kv": round(draw(st.floats(20, 160)), 2),
         "tube_current_ma": round(draw(st.floats(0.1, 2000)), 3),
         "exposure_time_s": round(draw(st.floats(0.001, 30)), 4),
-        "filament_current_a": draw(st.one_of(st.none(), st.floats(1, 12).map(lambda x: round(x, 4)))),
+        "filament_current_a": draw(
+            st.one_of(st.none(), st.floats(1, 12).map(lambda x: round(x, 4)))
+        ),
     }
 
 
@@ -72,11 +79,20 @@ def _write(path, data):
     w = csv.DictWriter(buf, fieldnames=COLS, lineterminator="\n")
     w.writeheader()
     for r in data:
-        w.writerow({k: ("" if v is None else (repr(v) if isinstance(v, float) else v)) for k, v in r.items()})
+        w.writerow(
+            {
+                k: ("" if v is None else (repr(v) if isinstance(v, float) else v))
+                for k, v in r.items()
+            }
+        )
     path.write_text(buf.getvalue(), encoding="utf-8")
 
 
-@settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(
+    max_examples=30,
+    deadline=None,
+    suppress_health_check=[HealthCheck.function_scoped_fixture],
+)
 @given(data=rows())
 def test_reconciliation_roundtrip_and_idempotence(tmp_path_factory, data):
     rows_, bad = data
@@ -88,7 +104,9 @@ def test_reconciliation_roundtrip_and_idempotence(tmp_path_factory, data):
     assert rep.rows_read == len(rows_)
     assert rep.rows_rejected == len(bad)
     assert rep.rows_duplicate == 0  # timestamps are distinct by construction
-    reject_lines = sorted({r[0] for r in con.execute("SELECT line FROM rejects").fetchall()})
+    reject_lines = sorted(
+        {r[0] for r in con.execute("SELECT line FROM rejects").fetchall()}
+    )
     assert reject_lines == [i + 2 for i in bad]
     got = con.execute(
         "SELECT source_line, timestamp_utc, system_id, focal_spot, tube_voltage_kv, "

@@ -31,16 +31,23 @@ def _readme_bad_rows() -> tuple[set[tuple[str, int]], set[tuple[str, int]]]:
 
 
 @pytest.mark.slow
-@pytest.mark.skipif(not (SAMPLE / "inventory").exists(), reason="sample_logs not generated")
+@pytest.mark.skipif(
+    not (SAMPLE / "inventory").exists(), reason="sample_logs not generated"
+)
 def test_ingest_sample_logs_end_to_end(tmp_path, monkeypatch):
     monkeypatch.chdir(SAMPLE.parent)
     db = tmp_path / "demo.duckdb"
-    res = CliRunner().invoke(app, ["ingest", "--db", str(db), "--format", "json", "sample_logs"])
+    res = CliRunner().invoke(
+        app, ["ingest", "--db", str(db), "--format", "json", "sample_logs"]
+    )
     assert res.exit_code == 0, res.stderr
     out = json.loads(res.stdout)
     assert [o for o in out if o["status"] == "failed"] == []
     for o in out:
-        assert o["rows_read"] == o["rows_accepted"] + o["rows_rejected"] + o["rows_duplicate"], o
+        assert (
+            o["rows_read"]
+            == o["rows_accepted"] + o["rows_rejected"] + o["rows_duplicate"]
+        ), o
     genlogs = [o for o in out if "/genlog_" in o["path"]]
     assert genlogs and {o["profile"] for o in genlogs} == {"harrowgate"}
 
@@ -48,19 +55,29 @@ def test_ingest_sample_logs_end_to_end(tmp_path, monkeypatch):
     assert_reconciles(con)
     got = {
         (p.removeprefix("sample_logs/"), int(line))
-        for p, line in con.execute("SELECT path, line FROM rejects WHERE line IS NOT NULL").fetchall()
+        for p, line in con.execute(
+            "SELECT path, line FROM rejects WHERE line IS NOT NULL"
+        ).fetchall()
     }
     rejected, duplicated = _readme_bad_rows()
     assert got == rejected
     for path, _line in duplicated:
         dups = con.execute(
-            "SELECT rows_duplicate FROM ingest_files WHERE path = ?", [f"sample_logs/{path}"]
+            "SELECT rows_duplicate FROM ingest_files WHERE path = ?",
+            [f"sample_logs/{path}"],
         ).fetchone()[0]
         assert dups >= 1
-    inv = con.execute("SELECT (SELECT count(*) FROM systems), (SELECT count(*) FROM tubes)").fetchone()
+    inv = con.execute(
+        "SELECT (SELECT count(*) FROM systems), (SELECT count(*) FROM tubes)"
+    ).fetchone()
     assert inv[0] > 0 and inv[1] >= inv[0]
     con.close()
 
-    again = CliRunner().invoke(app, ["ingest", "--db", str(db), "--format", "json", "-q", "sample_logs"])
+    again = CliRunner().invoke(
+        app, ["ingest", "--db", str(db), "--format", "json", "-q", "sample_logs"]
+    )
     assert again.exit_code == 0
-    assert {o["status"] for o in json.loads(again.stdout)} <= {"already_ingested", "skipped"}
+    assert {o["status"] for o in json.loads(again.stdout)} <= {
+        "already_ingested",
+        "skipped",
+    }

@@ -192,7 +192,12 @@ def _emit_summary(
             row["preview_rejects"] = records(p.rejects) if p is not None else []
         sys.stdout.write(json.dumps(rows, default=_json_default, indent=1) + "\n")
     else:
-        emit(frame, fmt, title="ingest" if fmt is OutputFormat.table else None, columns=_TABLE_COLUMNS)
+        emit(
+            frame,
+            fmt,
+            title="ingest" if fmt is OutputFormat.table else None,
+            columns=_TABLE_COLUMNS,
+        )
         if previews and fmt is OutputFormat.table:
             for path, p in result.previews:
                 emit(p.rows, fmt, title=f"{path}: first canonical rows (UTC)")
@@ -280,7 +285,10 @@ def register(app: typer.Typer) -> None:
         profile: ProfileOption = None,
         kind: KindOption = None,
         rows: Annotated[
-            int, typer.Option("--rows", "-n", min=1, help="Canonical rows and rejects to show [rows].")
+            int,
+            typer.Option(
+                "--rows", "-n", min=1, help="Canonical rows and rejects to show [rows]."
+            ),
         ] = 10,
         db: DbOption = None,
         fmt: FormatOption = OutputFormat.table,
@@ -295,7 +303,10 @@ def register(app: typer.Typer) -> None:
     def profiles(
         folder: Annotated[
             Path | None,
-            typer.Argument(help="Also list (and validate) FOLDER/profiles/*.toml.", show_default=False),
+            typer.Argument(
+                help="Also list (and validate) FOLDER/profiles/*.toml.",
+                show_default=False,
+            ),
         ] = None,
         fmt: FormatOption = OutputFormat.table,
     ) -> None:
@@ -344,12 +355,20 @@ def register(app: typer.Typer) -> None:
 
             from tubetrack.cli.common import _json_default
 
-            sys.stdout.write(json.dumps(st.as_json(), default=_json_default, indent=1) + "\n")
+            sys.stdout.write(
+                json.dumps(st.as_json(), default=_json_default, indent=1) + "\n"
+            )
         elif fmt is OutputFormat.csv:
             emit(st.long(), fmt)
         else:
             ov = st.sections["overview"]
-            emit(ov.T.reset_index().set_axis(["item", "value"], axis=1).astype({"value": str}), fmt, title="store")
+            emit(
+                ov.T.reset_index()
+                .set_axis(["item", "value"], axis=1)
+                .astype({"value": str}),
+                fmt,
+                title="store",
+            )
             for name in SECTIONS[1:]:
                 frame = st.sections[name]
                 if not frame.empty:

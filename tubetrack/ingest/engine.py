@@ -46,7 +46,6 @@ if TYPE_CHECKING:  # pragma: no cover
     import duckdb
 
 
-
 @dataclass(frozen=True)
 class Preview:
     """Dry-run extras: first canonical rows and first rejects (pandas DataFrames)."""
@@ -55,14 +54,16 @@ class Preview:
     rejects: Any
 
 
-
 # --------------------------------------------------------------------------------------------
 # one file
 # --------------------------------------------------------------------------------------------
 
 
 def decide_kind(
-    path: Path, profile: Profile | None, kind_opt: str | None, columns: tuple[str, ...] | None
+    path: Path,
+    profile: Profile | None,
+    kind_opt: str | None,
+    columns: tuple[str, ...] | None,
 ) -> str | None:
     """Kind of a file: the profile's, the file-name prefix, ``--kind``, then the header."""
     if profile is not None:
@@ -116,16 +117,43 @@ def ingest_file(
     try:
         scan = rd.scan_file(path)
     except OSError as exc:
-        return _failed(con, shown, None, pname, "", started, None, f"cannot read the file ({exc.strerror}). Check the path and permissions.", dry_run), None
+        return _failed(
+            con,
+            shown,
+            None,
+            pname,
+            "",
+            started,
+            None,
+            f"cannot read the file ({exc.strerror}). Check the path and permissions.",
+            dry_run,
+        ), None
     if scan.size == 0:
-        return _failed(con, shown, profile.kind if profile else kind_from_name(path.name) or kind, pname, scan.sha256, started, None, "the file is empty (0 bytes). Export it again.", dry_run), None
+        return _failed(
+            con,
+            shown,
+            profile.kind if profile else kind_from_name(path.name) or kind,
+            pname,
+            scan.sha256,
+            started,
+            None,
+            "the file is empty (0 bytes). Export it again.",
+            dry_run,
+        ), None
     if scan.truncated:
         return _failed(
-            con, shown, profile.kind if profile else kind_from_name(path.name) or kind, pname,
-            scan.sha256, started, scan.lines or None,
+            con,
+            shown,
+            profile.kind if profile else kind_from_name(path.name) or kind,
+            pname,
+            scan.sha256,
+            started,
+            scan.lines or None,
             f"the gzip data is truncated or corrupt ({scan.gzip_error}); the whole file is "
             "rejected, nothing was stored from it. Copy the file again from its source.",
-            dry_run, None, _row_estimate(path, scan),
+            dry_run,
+            None,
+            _row_estimate(path, scan),
         ), None
     if not dry_run:
         prev = con.execute(
@@ -134,19 +162,47 @@ def ingest_file(
             [scan.sha256, STATUS_INGESTED, pname],
         ).fetchone()
         if prev:
-            known_kind = profile.kind if profile else (kind_from_name(path.name) or kind)
+            known_kind = (
+                profile.kind if profile else (kind_from_name(path.name) or kind)
+            )
             msg = f"same content as {prev[0]}, already ingested; nothing to do"
             con.execute(
                 "INSERT INTO ingest_files (path, sha256, table_kind, profile, status, "
                 "started_at_utc, finished_at_utc) VALUES (?, ?, ?, ?, ?, ?, ?)",
-                [shown, scan.sha256, known_kind, pname, STATUS_ALREADY, started, utcnow()],
+                [
+                    shown,
+                    scan.sha256,
+                    known_kind,
+                    pname,
+                    STATUS_ALREADY,
+                    started,
+                    utcnow(),
+                ],
             )
-            return FileReport(shown, known_kind, pname, STATUS_ALREADY, message=msg, sha256=scan.sha256), None
+            return FileReport(
+                shown,
+                known_kind,
+                pname,
+                STATUS_ALREADY,
+                message=msg,
+                sha256=scan.sha256,
+            ), None
     try:
         if not dry_run:
             con.execute("BEGIN TRANSACTION")
         try:
-            report, preview = _ingest_in_txn(con, path, shown, scan, profile, kind, dry_run, now_utc, started, preview_rows)
+            report, preview = _ingest_in_txn(
+                con,
+                path,
+                shown,
+                scan,
+                profile,
+                kind,
+                dry_run,
+                now_utc,
+                started,
+                preview_rows,
+            )
         except BaseException:
             if not dry_run:
                 con.execute("ROLLBACK")
@@ -157,13 +213,33 @@ def ingest_file(
         return report, preview
     except FileFailure as exc:
         guess = profile.kind if profile else (kind_from_name(path.name) or kind)
-        return _failed(con, shown, guess, pname, scan.sha256, started, exc.line, exc.detail, dry_run, exc.field, _row_estimate(path, scan)), None
+        return _failed(
+            con,
+            shown,
+            guess,
+            pname,
+            scan.sha256,
+            started,
+            exc.line,
+            exc.detail,
+            dry_run,
+            exc.field,
+            _row_estimate(path, scan),
+        ), None
     finally:
         _drop_temps(con)
 
 
 def _drop_temps(con: duckdb.DuckDBPyConnection) -> None:
-    for t in (STAGE, CSV_REJ, CSV_SCAN, "_tt_skip", "_tt_good", "_tt_new", "_tt_existing"):
+    for t in (
+        STAGE,
+        CSV_REJ,
+        CSV_SCAN,
+        "_tt_skip",
+        "_tt_good",
+        "_tt_new",
+        "_tt_existing",
+    ):
         try:
             con.execute(f"DROP TABLE IF EXISTS {t}")
         except Exception:  # pragma: no cover
@@ -204,8 +280,15 @@ def _failed(
             [rows, rows, file_id],
         )
     return FileReport(
-        shown, kind, pname, STATUS_FAILED, rows_read=rows, rows_rejected=rows, message=full,
-        sha256=sha, file_id=file_id,
+        shown,
+        kind,
+        pname,
+        STATUS_FAILED,
+        rows_read=rows,
+        rows_rejected=rows,
+        message=full,
+        sha256=sha,
+        file_id=file_id,
     )
 
 
@@ -236,7 +319,8 @@ def _ingest_in_txn(
     kind_name = decide_kind(path, profile, kind_opt, src.columns)
     if kind_name is None:
         raise FileFailure(
-            shown, 1 if src.fmt == "csv" else None,
+            shown,
+            1 if src.fmt == "csv" else None,
             f"cannot tell which table this file feeds: its name does not start with one of "
             f"{', '.join(KINDS)} and its columns ({list_columns(src.columns)}) match no table. Rename it, "
             "give --kind, or read it with a profile.",
@@ -252,16 +336,23 @@ def _ingest_in_txn(
         if isinstance(exc, duckdb.Error):
             if "invalid state" in str(exc):
                 raise FileFailure(
-                    shown, None,
+                    shown,
+                    None,
                     "the CSV reader cannot follow the file's structure, typically mixed line "
                     "endings (CRLF and LF lines in one file) or a quote that is never closed; "
                     "the whole file is rejected. Save it with one kind of line ending and "
                     "balanced quotes.",
                 ) from None
-            raise FileFailure(shown, None, f"cannot be read ({short_error(exc)}). Check the file's format, delimiter and encoding.") from None
+            raise FileFailure(
+                shown,
+                None,
+                f"cannot be read ({short_error(exc)}). Check the file's format, delimiter and encoding.",
+            ) from None
         raise
     join, line = line_expr(con, src, scan)
-    n_stage, n_bad = con.execute(f"SELECT count(*), count(*) FILTER (WHERE _bad) FROM {STAGE}").fetchone()
+    n_stage, n_bad = con.execute(
+        f"SELECT count(*), count(*) FILTER (WHERE _bad) FROM {STAGE}"
+    ).fetchone()
     csv_rej = []
     if src.fmt == "csv":
         csv_rej = con.execute(
@@ -277,12 +368,23 @@ def _ingest_in_txn(
         row = con.execute(
             "INSERT INTO ingest_files (path, sha256, table_kind, profile, status, started_at_utc) "
             "VALUES (?, ?, ?, ?, ?, ?) RETURNING file_id",
-            [shown, scan.sha256, kind.name, profile.name if profile else None, STATUS_INGESTED, started],
+            [
+                shown,
+                scan.sha256,
+                kind.name,
+                profile.name if profile else None,
+                STATUS_INGESTED,
+                started,
+            ],
         ).fetchone()
         file_id = int(row[0])
 
     # rejects: one row per failing check
-    err_cols = [c for c in _stage_columns(con) if c.startswith(("e__", "x")) and "__" in c or c == "e___row"]
+    err_cols = [
+        c
+        for c in _stage_columns(con)
+        if c.startswith(("e__", "x")) and "__" in c or c == "e___row"
+    ]
     unions = []
     for c in err_cols:
         fname = None if c == "e___row" else c.split("__", 1)[1]
@@ -311,8 +413,14 @@ def _ingest_in_txn(
             con.executemany(
                 "INSERT INTO rejects VALUES (?, ?, ?, ?, ?, ?)",
                 [
-                    [file_id, shown, int(r[0]), None, (r[3] or "")[:1000],
-                     _csv_reason(csv_reasons, r[2])]
+                    [
+                        file_id,
+                        shown,
+                        int(r[0]),
+                        None,
+                        (r[3] or "")[:1000],
+                        _csv_reason(csv_reasons, r[2]),
+                    ]
                     for r in csv_rej
                 ],
             )
@@ -323,8 +431,12 @@ def _ingest_in_txn(
     cols = [f.name for f in kind.fields]
     derived = {c: qi(c) for c in cols}
     if kind.name == "exposures":
-        derived["exposure_mas"] = "COALESCE(exposure_mas, tube_current_ma * exposure_time_s)"
-        derived["exposure_time_s"] = "COALESCE(exposure_time_s, exposure_mas / tube_current_ma)"
+        derived["exposure_mas"] = (
+            "COALESCE(exposure_mas, tube_current_ma * exposure_time_s)"
+        )
+        derived["exposure_time_s"] = (
+            "COALESCE(exposure_time_s, exposure_mas / tube_current_ma)"
+        )
         derived["arc_count"] = "COALESCE(arc_count, 0)"
     if kind.name == "downtime":
         derived["severity"] = "COALESCE(severity, 'hard_down')"
@@ -347,12 +459,15 @@ def _ingest_in_txn(
             f"(SELECT ({key_cols}) FROM _tt_good GROUP BY {key_cols} HAVING count(*) > 1)) r "
             f"WHERE _tt_good._rec = r._rec"
         )
-    n_good, n_dup_in = con.execute("SELECT count(*), count(*) FILTER (WHERE _rank > 1) FROM _tt_good").fetchone()
+    n_good, n_dup_in = con.execute(
+        "SELECT count(*), count(*) FILTER (WHERE _rank > 1) FROM _tt_good"
+    ).fetchone()
     target = kind.table
     match = " AND ".join(f"e.{qi(k)} IS NOT DISTINCT FROM g.{qi(k)}" for k in key)
     if kind.upsert:
         same = " AND ".join(
-            f"(g.{qi(c)} IS NULL OR e.{qi(c)} IS NOT DISTINCT FROM g.{qi(c)})" for c in cols
+            f"(g.{qi(c)} IS NULL OR e.{qi(c)} IS NOT DISTINCT FROM g.{qi(c)})"
+            for c in cols
         )
         n_same = con.execute(
             f"SELECT count(*) FROM _tt_good g JOIN {target} e ON {match} WHERE g._rank = 1 AND {same}"
@@ -366,7 +481,9 @@ def _ingest_in_txn(
         prune = ""
         tc = kind.time_column
         if tc:
-            lo, hi = con.execute(f"SELECT min({qi(tc)}), max({qi(tc)}) FROM _tt_good").fetchone()
+            lo, hi = con.execute(
+                f"SELECT min({qi(tc)}), max({qi(tc)}) FROM _tt_good"
+            ).fetchone()
             if lo is not None:
                 # literal bounds (our own datetimes, not user text) so DuckDB prunes by zone maps
                 prune = (
@@ -387,9 +504,10 @@ def _ingest_in_txn(
             f"CREATE OR REPLACE TEMP TABLE _tt_new AS SELECT g.* FROM _tt_good g WHERE g._rank = 1 "
             f"AND NOT EXISTS (SELECT 1 FROM _tt_existing e WHERE {match})"
         )
-        n_dup_store = con.execute(
-            "SELECT count(*) FROM _tt_good WHERE _rank = 1"
-        ).fetchone()[0] - con.execute("SELECT count(*) FROM _tt_new").fetchone()[0]
+        n_dup_store = (
+            con.execute("SELECT count(*) FROM _tt_good WHERE _rank = 1").fetchone()[0]
+            - con.execute("SELECT count(*) FROM _tt_new").fetchone()[0]
+        )
     n_new = con.execute("SELECT count(*) FROM _tt_new").fetchone()[0]
     n_dup = int(n_dup_in) + int(n_dup_store)
     assert int(n_good) == int(n_new) + n_dup
@@ -407,7 +525,9 @@ def _ingest_in_txn(
         conflict = ""
         if kind.upsert:
             sets = ", ".join(
-                f"{qi(c)} = COALESCE(excluded.{qi(c)}, {target}.{qi(c)})" for c in cols if c not in key
+                f"{qi(c)} = COALESCE(excluded.{qi(c)}, {target}.{qi(c)})"
+                for c in cols
+                if c not in key
             )
             conflict = f" ON CONFLICT ({key_cols}) DO UPDATE SET {sets}, source_file = excluded.source_file"
         con.execute(
@@ -418,11 +538,20 @@ def _ingest_in_txn(
         con.execute(
             "UPDATE ingest_files SET rows_read = ?, rows_accepted = ?, rows_rejected = ?, "
             "rows_duplicate = ?, finished_at_utc = ? WHERE file_id = ?",
-            [rows_read, int(n_new), int(n_bad) + len(csv_rej), n_dup, utcnow(), file_id],
+            [
+                rows_read,
+                int(n_new),
+                int(n_bad) + len(csv_rej),
+                n_dup,
+                utcnow(),
+                file_id,
+            ],
         )
     message = ""
     if ignored:
-        message = f"ignored columns: {', '.join(ignored[:10])}" + (" ..." if len(ignored) > 10 else "")
+        message = f"ignored columns: {', '.join(ignored[:10])}" + (
+            " ..." if len(ignored) > 10 else ""
+        )
     if rows_read == 0:
         message = (message + "; " if message else "") + "header only: no data rows"
     preview = None
@@ -431,18 +560,27 @@ def _ingest_in_txn(
             f"SELECT _line AS line, {', '.join(qi(c) for c in cols)} FROM _tt_good WHERE _rank = 1 ORDER BY _line LIMIT {int(preview_rows)}"
         ).df()
         rows = rows[[c for c in rows.columns if rows[c].notna().any()]]
-        rej = con.execute(f"SELECT * FROM ({reject_sql}) ORDER BY line LIMIT {int(preview_rows)}").df()
+        rej = con.execute(
+            f"SELECT * FROM ({reject_sql}) ORDER BY line LIMIT {int(preview_rows)}"
+        ).df()
         if csv_rej:
             import pandas as pd
 
             extra = pd.DataFrame(
                 [
-                    (int(r[0]), None, (r[3] or "")[:1000], _csv_reason(csv_reasons, r[2]))
+                    (
+                        int(r[0]),
+                        None,
+                        (r[3] or "")[:1000],
+                        _csv_reason(csv_reasons, r[2]),
+                    )
                     for r in csv_rej[: int(preview_rows)]
                 ],
                 columns=["line", "field", "raw_value", "reason"],
             )
-            rej = pd.concat([rej, extra], ignore_index=True).sort_values("line", kind="stable")
+            rej = pd.concat([rej, extra], ignore_index=True).sort_values(
+                "line", kind="stable"
+            )
             rej = rej.head(int(preview_rows)).reset_index(drop=True)
         preview = Preview(rows, rej)
     report = FileReport(
@@ -467,4 +605,6 @@ def _stage_columns(con: duckdb.DuckDBPyConnection) -> list[str]:
 
 def _csv_reason(reasons: dict[str, str], error_type: object) -> str:
     """Our reason text for one of DuckDB's CSV error types."""
-    return reasons.get(str(error_type), f"malformed line: {str(error_type).lower()}; fix the line")
+    return reasons.get(
+        str(error_type), f"malformed line: {str(error_type).lower()}; fix the line"
+    )

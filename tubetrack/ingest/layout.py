@@ -50,7 +50,9 @@ class Kind:
     fields: tuple[Field, ...]
     key: tuple[str, ...]
     upsert: bool = False  # inventory: update rows by key instead of skipping duplicates
-    one_of: tuple[tuple[str, ...], ...] = ()  # at least one of these columns must be present
+    one_of: tuple[
+        tuple[str, ...], ...
+    ] = ()  # at least one of these columns must be present
     has_line: bool = True  # store table has source_line
     time_column: str | None = "timestamp_utc"  # column used to prune the dedupe scan
 
@@ -90,9 +92,31 @@ DOWNTIME_CAUSES = (
     "other",
 )
 SEVERITIES = ("hard_down", "partial")
-MODALITIES = ("radiographic", "mobile", "fluoroscopy", "mammography", "ct", "dental", "other")
-GENERATOR_TYPES = ("single_phase", "three_phase_6p", "three_phase_12p", "high_frequency")
-REMOVAL_REASONS = ("filament", "arcing", "bearing", "anode", "vacuum", "housing", "other", "upgrade")
+MODALITIES = (
+    "radiographic",
+    "mobile",
+    "fluoroscopy",
+    "mammography",
+    "ct",
+    "dental",
+    "other",
+)
+GENERATOR_TYPES = (
+    "single_phase",
+    "three_phase_6p",
+    "three_phase_12p",
+    "high_frequency",
+)
+REMOVAL_REASONS = (
+    "filament",
+    "arcing",
+    "bearing",
+    "anode",
+    "vacuum",
+    "housing",
+    "other",
+    "upgrade",
+)
 
 _TS = "timestamp"
 
@@ -103,16 +127,40 @@ KINDS: dict[str, Kind] = {
         (
             Field("timestamp_utc", _TS, True, doc="start of the exposure"),
             Field("system_id", "id", True, doc="system that made the exposure"),
-            Field("tube_id", "id", doc="tube serial; empty = attributed from the tubes table"),
+            Field(
+                "tube_id",
+                "id",
+                doc="tube serial; empty = attributed from the tubes table",
+            ),
             Field("focal_spot", "enum", True, choices=FOCAL_SPOTS),
             Field("tube_voltage_kv", "number", True, "kV", doc="set peak tube voltage"),
-            Field("tube_current_ma", "number", True, "mA", doc="set tube current (mA station)"),
-            Field("tube_current_measured_ma", "number", False, "mA", doc="measured tube current"),
+            Field(
+                "tube_current_ma",
+                "number",
+                True,
+                "mA",
+                doc="set tube current (mA station)",
+            ),
+            Field(
+                "tube_current_measured_ma",
+                "number",
+                False,
+                "mA",
+                doc="measured tube current",
+            ),
             Field("exposure_time_s", "number", False, "s", doc="exposure time"),
             Field("exposure_mas", "number", False, "mAs", doc="current-time product"),
-            Field("filament_current_a", "number", False, "A", doc="filament heating current"),
+            Field(
+                "filament_current_a",
+                "number",
+                False,
+                "A",
+                doc="filament heating current",
+            ),
             Field("filament_voltage_v", "number", False, "V", doc="filament voltage"),
-            Field("prep_time_s", "number", False, "s", doc="filament boost (prep) time"),
+            Field(
+                "prep_time_s", "number", False, "s", doc="filament boost (prep) time"
+            ),
             Field("arc_count", "integer", False, doc="arcs during the exposure"),
         ),
         key=("system_id", "timestamp_utc"),
@@ -128,9 +176,21 @@ KINDS: dict[str, Kind] = {
             Field("focal_spot", "enum", True, choices=FOCAL_SPOTS),
             Field("tube_voltage_kv", "number", True, "kV"),
             Field("tube_current_ma", "number", True, "mA", doc="mA station"),
-            Field("filament_current_a", "number", True, "A", doc="filament current in the table"),
+            Field(
+                "filament_current_a",
+                "number",
+                True,
+                "A",
+                doc="filament current in the table",
+            ),
         ),
-        key=("system_id", "timestamp_utc", "focal_spot", "tube_voltage_kv", "tube_current_ma"),
+        key=(
+            "system_id",
+            "timestamp_utc",
+            "focal_spot",
+            "tube_voltage_kv",
+            "tube_current_ma",
+        ),
     ),
     "events": Kind(
         "events",
@@ -168,8 +228,14 @@ KINDS: dict[str, Kind] = {
             Field("site", "text"),
             Field("modality", "enum", choices=MODALITIES),
             Field("generator_type", "enum", choices=GENERATOR_TYPES),
-            Field("criticality_weight", "number", doc="relative clinical impact, 1 = typical"),
-            Field("uptime_target_pct", "number", unit="%", doc="contracted availability"),
+            Field(
+                "criticality_weight",
+                "number",
+                doc="relative clinical impact, 1 = typical",
+            ),
+            Field(
+                "uptime_target_pct", "number", unit="%", doc="contracted availability"
+            ),
             Field("scheduled_hours_per_week", "number", unit="h"),
             Field("model_label", "text"),
         ),
@@ -203,7 +269,17 @@ KIND_PREFIXES = tuple(KINDS)
 
 #: Files the walker never reads (ground truth of the demo, documentation).
 SKIP_NAME_PREFIXES = ("truth", "readme", "license", ".", "dicom-devices")
-LOG_SUFFIXES = (".csv", ".tsv", ".txt", ".log", ".dat", ".jsonl", ".ndjson", ".json", ".parquet")
+LOG_SUFFIXES = (
+    ".csv",
+    ".tsv",
+    ".txt",
+    ".log",
+    ".dat",
+    ".jsonl",
+    ".ndjson",
+    ".json",
+    ".parquet",
+)
 
 
 def kind_from_name(name: str) -> str | None:

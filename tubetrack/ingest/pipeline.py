@@ -56,7 +56,9 @@ class IngestSummary:
         rows_rejected, rows_duplicate, message."""
         import pandas as pd
 
-        return pd.DataFrame([r.as_row() for r in self.reports], columns=list(REPORT_COLUMNS))
+        return pd.DataFrame(
+            [r.as_row() for r in self.reports], columns=list(REPORT_COLUMNS)
+        )
 
     def total(self, name: str) -> int:
         return sum(int(getattr(r, name)) for r in self.reports)
@@ -78,7 +80,9 @@ class IngestSummary:
         counts: dict[str, int] = {}
         for r in self.reports:
             counts[r.status] = counts.get(r.status, 0) + 1
-        files = ", ".join(f"{n} {s.replace('_', ' ')}" for s, n in sorted(counts.items()))
+        files = ", ".join(
+            f"{n} {s.replace('_', ' ')}" for s, n in sorted(counts.items())
+        )
         return (
             f"{len(self.reports)} files ({files or 'none'}): rows read {self.total('rows_read'):,} = "
             f"accepted {self.total('rows_accepted'):,} + rejected {self.total('rows_rejected'):,} "
@@ -95,7 +99,12 @@ class _Job:
     skip_reason: str = ""
 
 
-_KIND_ORDER = {k: i for i, k in enumerate(("systems", "tubes", *[k for k in KINDS if k not in ("systems", "tubes")]))}
+_KIND_ORDER = {
+    k: i
+    for i, k in enumerate(
+        ("systems", "tubes", *[k for k in KINDS if k not in ("systems", "tubes")])
+    )
+}
 
 
 def _skip_name(name: str) -> bool:
@@ -134,7 +143,10 @@ def plan_jobs(
             if not f.is_file():
                 continue
             rel = f.relative_to(root)
-            if any(_skip_name(part) for part in rel.parts) or "profiles" in rel.parts[:-1]:
+            if (
+                any(_skip_name(part) for part in rel.parts)
+                or "profiles" in rel.parts[:-1]
+            ):
                 continue
             if f.resolve() in seen:
                 continue
@@ -146,16 +158,26 @@ def plan_jobs(
                 continue  # documentation, images, ... inside a folder: not ours to report
             chosen = None
             if profile is not None:
-                chosen = profile if profile.matches(rel.as_posix()) or not profile.files else None
+                chosen = (
+                    profile
+                    if profile.matches(rel.as_posix()) or not profile.files
+                    else None
+                )
             else:
-                chosen = next((pr for pr in auto if pr.files and pr.matches(rel.as_posix())), None)
+                chosen = next(
+                    (pr for pr in auto if pr.files and pr.matches(rel.as_posix())), None
+                )
             jobs.append(_Job(f, str(f), chosen))
 
     def order(j: _Job) -> tuple[int, int, str]:
         if j.dicom:
             return (2, 0, j.shown)
         k = j.profile.kind if j.profile else kind_from_name(j.path.name)
-        return (0 if k in ("systems", "tubes") else 1, _KIND_ORDER.get(k or "", 99), j.shown)
+        return (
+            0 if k in ("systems", "tubes") else 1,
+            _KIND_ORDER.get(k or "", 99),
+            j.shown,
+        )
 
     return sorted(jobs, key=order)
 
@@ -208,13 +230,17 @@ def ingest_paths(
         One report per file; a file-level failure never stops the other files.
     """
     if kind is not None and kind not in KINDS:
-        raise InputError(f"--kind {kind!r} is not a table kind; allowed: {', '.join(KINDS)}.")
+        raise InputError(
+            f"--kind {kind!r} is not a table kind; allowed: {', '.join(KINDS)}."
+        )
     prof = load_profile(profile) if isinstance(profile, str | Path) else profile
     try:
         con.execute("SET TimeZone = 'UTC'")
     except Exception:  # pragma: no cover - ICU missing
         pass
-    con.execute("SET enable_progress_bar = false")  # our own bar, on stderr, when wanted
+    con.execute(
+        "SET enable_progress_bar = false"
+    )  # our own bar, on stderr, when wanted
     jobs = plan_jobs(paths, prof)
     _call(progress, "start", len(jobs), sum(_size(j.path) for j in jobs))
     reports: list[FileReport] = []
@@ -226,7 +252,9 @@ def ingest_paths(
             continue
         _call(progress, "file_started", job.shown, _size(job.path))
         if job.skip_reason:
-            rep = FileReport(job.shown, None, None, STATUS_SKIPPED, message=job.skip_reason)
+            rep = FileReport(
+                job.shown, None, None, STATUS_SKIPPED, message=job.skip_reason
+            )
         else:
             rep, prev = ingest_file(
                 con,
@@ -251,7 +279,10 @@ def _ingest_dicom(
     con: duckdb.DuckDBPyConnection, jobs: list[_Job], dry_run: bool, progress: Any
 ) -> list[FileReport]:
     def skipped(msg: str) -> list[FileReport]:
-        out = [FileReport(j.shown, "dicom", None, STATUS_SKIPPED, message=msg) for j in jobs]
+        out = [
+            FileReport(j.shown, "dicom", None, STATUS_SKIPPED, message=msg)
+            for j in jobs
+        ]
         for r in out:
             _call(progress, "file_done", r)
         return out
@@ -287,4 +318,10 @@ def _call(obj: Any, name: str, *args: Any) -> None:
         fn(*args)
 
 
-__all__ = ["IngestSummary", "IngestProgress", "ingest_paths", "plan_jobs", "STATUS_ALREADY"]
+__all__ = [
+    "IngestSummary",
+    "IngestProgress",
+    "ingest_paths",
+    "plan_jobs",
+    "STATUS_ALREADY",
+]

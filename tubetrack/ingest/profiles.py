@@ -42,7 +42,12 @@ FORMATS = ("csv", "jsonl", "parquet")
 DECIMALS = (".", ",")
 AMBIGUOUS_POLICIES = ("order", "earlier", "later", "reject")
 ENCODINGS = ("utf-8", "utf-16", "latin-1")
-_ENCODING_ALIASES = {"utf8": "utf-8", "iso-8859-1": "latin-1", "latin1": "latin-1", "utf16": "utf-16"}
+_ENCODING_ALIASES = {
+    "utf8": "utf-8",
+    "iso-8859-1": "latin-1",
+    "latin1": "latin-1",
+    "utf16": "utf-16",
+}
 # DuckDB strptime specifiers (https://duckdb.org/docs/sql/functions/dateformat)
 _STRPTIME_SPECS = set("aAwdbBmyYHIpMSfzZjUWcxXTgGuV%-")
 
@@ -100,7 +105,9 @@ class Profile:
         return {k: v for k, v in m.groupdict().items() if v is not None}
 
 
-def _fail(path: str, key: str, value: Any, problem: str, allowed: Any = None) -> ProfileError:
+def _fail(
+    path: str, key: str, value: Any, problem: str, allowed: Any = None
+) -> ProfileError:
     msg = f"profile {path}: {key} = {value!r} {problem}"
     if allowed is not None:
         if isinstance(allowed, list | tuple):
@@ -115,7 +122,9 @@ def _as_str(path: str, key: str, value: Any) -> str:
     return str(value)
 
 
-def _check_keys(path: str, section: str, data: dict[str, Any], allowed: tuple[str, ...]) -> None:
+def _check_keys(
+    path: str, section: str, data: dict[str, Any], allowed: tuple[str, ...]
+) -> None:
     for key, value in data.items():
         if key not in allowed:
             where = f"{section}.{key}" if section else key
@@ -153,15 +162,26 @@ def parse_profile(data: dict[str, Any], path: str) -> Profile:
         delim = _as_str(path, "delimiter", delim)
         if delim == "\\t":
             delim = "\t"
-        if len(delim) != 1 or delim in "\"\n\r":
-            raise _fail(path, "delimiter", delim, "must be one character (not a quote or newline)")
+        if len(delim) != 1 or delim in '"\n\r':
+            raise _fail(
+                path,
+                "delimiter",
+                delim,
+                "must be one character (not a quote or newline)",
+            )
     decimal = data.get("decimal", ".")
     if decimal not in DECIMALS:
         raise _fail(path, "decimal", decimal, "is not a decimal mark", DECIMALS)
     enc = str(data.get("encoding", "utf-8")).lower()
     enc = _ENCODING_ALIASES.get(enc, enc)
     if enc not in ENCODINGS:
-        raise _fail(path, "encoding", data.get("encoding"), "is not a supported encoding", ENCODINGS)
+        raise _fail(
+            path,
+            "encoding",
+            data.get("encoding"),
+            "is not a supported encoding",
+            ENCODINGS,
+        )
 
     columns: dict[str, tuple[str, ...]] = {}
     cols_raw = data.get("columns", {})
@@ -169,11 +189,15 @@ def parse_profile(data: dict[str, Any], path: str) -> Profile:
         raise _fail(path, "columns", cols_raw, "must be a table [columns]")
     for key, value in cols_raw.items():
         if key not in names:
-            raise _fail(path, f"columns.{key}", value, f"is not a column of {kind}", names)
+            raise _fail(
+                path, f"columns.{key}", value, f"is not a column of {kind}", names
+            )
         if isinstance(value, list):
             if spec.field(key).type != "timestamp" or not value or len(value) > 3:
                 raise _fail(
-                    path, f"columns.{key}", value,
+                    path,
+                    f"columns.{key}",
+                    value,
                     "may be a list (joined with a space) only for a timestamp column, 1-3 names",
                 )
             columns[key] = tuple(_as_str(path, f"columns.{key}", v) for v in value)
@@ -183,40 +207,56 @@ def parse_profile(data: dict[str, Any], path: str) -> Profile:
     units: dict[str, str] = {}
     for key, value in dict(data.get("units", {})).items():
         if key not in names:
-            raise _fail(path, f"units.{key}", value, f"is not a column of {kind}", names)
+            raise _fail(
+                path, f"units.{key}", value, f"is not a column of {kind}", names
+            )
         fam = spec.field(key).unit
         if fam is None:
             raise _fail(path, f"units.{key}", value, "names a column without a unit")
         if value not in UNIT_FAMILIES[fam]:
             raise _fail(
-                path, f"units.{key}", value, f"is not a unit of {key}", list(UNIT_FAMILIES[fam])
+                path,
+                f"units.{key}",
+                value,
+                f"is not a unit of {key}",
+                list(UNIT_FAMILIES[fam]),
             )
         units[key] = value
 
     values: dict[str, dict[str, str]] = {}
     for key, mapping in dict(data.get("values", {})).items():
         if key not in names:
-            raise _fail(path, f"values.{key}", mapping, f"is not a column of {kind}", names)
+            raise _fail(
+                path, f"values.{key}", mapping, f"is not a column of {kind}", names
+            )
         if not isinstance(mapping, dict):
-            raise _fail(path, f"values.{key}", mapping, "must be a table of code = value")
+            raise _fail(
+                path, f"values.{key}", mapping, "must be a table of code = value"
+            )
         f = spec.field(key)
         out: dict[str, str] = {}
         for code, target in mapping.items():
             t = _as_str(path, f"values.{key}.{code}", target)
             if f.choices and t not in f.choices:
-                raise _fail(path, f"values.{key}.{code}", t, f"is not a {key}", f.choices)
+                raise _fail(
+                    path, f"values.{key}.{code}", t, f"is not a {key}", f.choices
+                )
             out[str(code)] = t
         values[key] = out
 
     constants: dict[str, str] = {}
     for key, value in dict(data.get("constants", {})).items():
         if key not in names:
-            raise _fail(path, f"constants.{key}", value, f"is not a column of {kind}", names)
+            raise _fail(
+                path, f"constants.{key}", value, f"is not a column of {kind}", names
+            )
         if isinstance(value, bool):
             value = "true" if value else "false"
         constants[key] = _as_str(path, f"constants.{key}", value)
         if key in columns:
-            raise _fail(path, f"constants.{key}", value, "is also mapped in [columns]; keep one")
+            raise _fail(
+                path, f"constants.{key}", value, "is also mapped in [columns]; keep one"
+            )
 
     pattern = None
     fn = data.get("filename", {})
@@ -231,15 +271,23 @@ def parse_profile(data: dict[str, Any], path: str) -> Profile:
             rx = re.compile(pattern)
         except re.error as exc:
             raise _fail(
-                path, "filename.pattern", pattern, f"is not a valid regular expression ({exc})",
+                path,
+                "filename.pattern",
+                pattern,
+                f"is not a valid regular expression ({exc})",
                 "Python regular expressions with named groups such as (?P<system_id>[A-Z0-9-]+)",
             ) from None
         if not rx.groupindex:
-            raise _fail(path, "filename.pattern", pattern, "has no named group (?P<column>...)")
+            raise _fail(
+                path, "filename.pattern", pattern, "has no named group (?P<column>...)"
+            )
         for g in rx.groupindex:
             if g not in names:
                 raise _fail(
-                    path, "filename.pattern", pattern, f"captures group {g!r}, not a column of {kind}",
+                    path,
+                    "filename.pattern",
+                    pattern,
+                    f"captures group {g!r}, not a column of {kind}",
                     names,
                 )
 
@@ -253,13 +301,19 @@ def parse_profile(data: dict[str, Any], path: str) -> Profile:
         specs = re.findall(r"%(.)", f) if isinstance(f, str) else None
         if not specs or any(s not in _STRPTIME_SPECS for s in specs):
             raise _fail(
-                path, "time.formats", f, "is not a strptime format",
-                "%d %m %Y %y %H %M %S %f %z %b and literal text, e.g. \"%d.%m.%Y %H:%M:%S\"",
+                path,
+                "time.formats",
+                f,
+                "is not a strptime format",
+                '%d %m %Y %y %H %M %S %f %z %b and literal text, e.g. "%d.%m.%Y %H:%M:%S"',
             )
     tz = _as_str(path, "time.timezone", time.get("timezone", "UTC"))
     if tz not in _timezones():
         raise _fail(
-            path, "time.timezone", tz, "is not an IANA time zone",
+            path,
+            "time.timezone",
+            tz,
+            "is not an IANA time zone",
             "names such as UTC, Europe/Berlin, America/New_York (see zoneinfo.available_timezones())",
         )
     amb = time.get("ambiguous", "order")
@@ -308,7 +362,9 @@ def load_profile(path: str | Path) -> Profile:
     try:
         data = tomllib.loads(p.read_text(encoding="utf-8-sig"))
     except tomllib.TOMLDecodeError as exc:
-        raise ProfileError(f"profile {p}: not valid TOML ({exc}). Fix the file.") from None
+        raise ProfileError(
+            f"profile {p}: not valid TOML ({exc}). Fix the file."
+        ) from None
     except UnicodeDecodeError:
         raise ProfileError(f"profile {p}: not UTF-8 text. Save it as UTF-8.") from None
     return parse_profile(data, str(p))

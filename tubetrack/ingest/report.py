@@ -13,11 +13,21 @@ from typing import Any
 #: Status values a file can end in.
 STATUS_INGESTED = "ingested"  # rows written (possibly zero new rows, all duplicates)
 STATUS_ALREADY = "already_ingested"  # same sha256 already ingested: reported no-op
-STATUS_FAILED = "failed"  # file rejected whole; nothing written except the ingest_files row
-STATUS_SKIPPED = "skipped"  # not a log file we read (README, truth file, unsupported format)
+STATUS_FAILED = (
+    "failed"  # file rejected whole; nothing written except the ingest_files row
+)
+STATUS_SKIPPED = (
+    "skipped"  # not a log file we read (README, truth file, unsupported format)
+)
 STATUS_DRY_RUN = "dry_run"  # parsed and validated, nothing written
 
-STATUSES = (STATUS_INGESTED, STATUS_ALREADY, STATUS_FAILED, STATUS_SKIPPED, STATUS_DRY_RUN)
+STATUSES = (
+    STATUS_INGESTED,
+    STATUS_ALREADY,
+    STATUS_FAILED,
+    STATUS_SKIPPED,
+    STATUS_DRY_RUN,
+)
 
 
 @dataclass(frozen=True)
@@ -67,7 +77,10 @@ class FileReport:
     @property
     def reconciles(self) -> bool:
         """True when rows_read = accepted + rejected + duplicate."""
-        return self.rows_read == self.rows_accepted + self.rows_rejected + self.rows_duplicate
+        return (
+            self.rows_read
+            == self.rows_accepted + self.rows_rejected + self.rows_duplicate
+        )
 
     @property
     def failed(self) -> bool:

@@ -28,7 +28,9 @@ CSV_SCAN = "_tt_csv_scan"
 class FileFailure(InputError):
     """The whole file cannot be read; ``line`` and ``field`` say where."""
 
-    def __init__(self, path: str, line: int | None, message: str, field: str | None = None):
+    def __init__(
+        self, path: str, line: int | None, message: str, field: str | None = None
+    ):
         where = f"{path} line {line}" if line else path
         super().__init__(f"{where}: {message}")
         self.path, self.line, self.field, self.detail = path, line, field, message
@@ -44,7 +46,6 @@ class Params:
         name = f"p{len(self.values)}"
         self.values[name] = value
         return f"${name}"
-
 
 
 # --------------------------------------------------------------------------------------------
@@ -74,9 +75,18 @@ def open_source(
     if fmt == "parquet":
         sql = f"(SELECT file_row_number + 1 AS _rec, * EXCLUDE (file_row_number) FROM read_parquet({ppath}, file_row_number=true))"
         try:
-            cols = [r[0] for r in con.execute(f"DESCRIBE SELECT * FROM {sql}", p.values).fetchall()]
+            cols = [
+                r[0]
+                for r in con.execute(
+                    f"DESCRIBE SELECT * FROM {sql}", p.values
+                ).fetchall()
+            ]
         except Exception as exc:
-            raise FileFailure(shown, None, f"not a readable Parquet file ({short_error(exc)}). Re-export the file.") from None
+            raise FileFailure(
+                shown,
+                None,
+                f"not a readable Parquet file ({short_error(exc)}). Re-export the file.",
+            ) from None
         cols = [c for c in cols if c != "_rec"]
         return Source(sql, tuple(cols), fmt, 0)
     if fmt == "jsonl":
@@ -91,7 +101,11 @@ def open_source(
                 p.values,
             ).fetchall()
         except Exception as exc:
-            raise FileFailure(shown, None, f"not readable as JSON Lines ({short_error(exc)}). Check the file.") from None
+            raise FileFailure(
+                shown,
+                None,
+                f"not readable as JSON Lines ({short_error(exc)}). Check the file.",
+            ) from None
         return Source(sql, tuple(sorted(k[0] for k in keys)), fmt, 0, json=True)
     # CSV / TSV / text: header and delimiter decided here, rows parsed by DuckDB (RFC 4180
     # quoting) with the sniffer off, so a malformed or over-long line becomes a reject row
@@ -99,7 +113,11 @@ def open_source(
     enc = profile.encoding if profile else "utf-8"
     header = _header_text(scan.head, enc)
     if not header.strip():
-        raise FileFailure(shown, 1, "the first line is empty; it must be the header row with the column names. Remove the empty lines at the top.")
+        raise FileFailure(
+            shown,
+            1,
+            "the first line is empty; it must be the header row with the column names. Remove the empty lines at the top.",
+        )
     if profile is not None and profile.delimiter:
         delim = profile.delimiter
     elif rd.base_suffix(path) == ".tsv":
@@ -195,7 +213,8 @@ def resolve_columns(
                 hit = c if c in src.columns else by_lower.get(c.strip().lower())
                 if hit is None:
                     raise FileFailure(
-                        shown, 1 if src.fmt == "csv" else None,
+                        shown,
+                        1 if src.fmt == "csv" else None,
                         f'column "{c}" (mapped to {name} by profile {profile.name}) is not in the '
                         f"file; columns found: {list_columns(src.columns)}. Fix [columns] in {profile.path}, "
                         "or check the delimiter.",
@@ -208,14 +227,24 @@ def resolve_columns(
         for k, v in caps.items():
             constants.setdefault(f"__capture__{k}", v)
     for f in kind.fields:
-        have = f.name in mapped or f.name in constants or f"__capture__{f.name}" in constants
+        have = (
+            f.name in mapped
+            or f.name in constants
+            or f"__capture__{f.name}" in constants
+        )
         if f.required and not have:
-            raise FileFailure(shown, 1 if src.fmt == "csv" else None, _missing_msg(kind, f.name, src, profile), f.name)
+            raise FileFailure(
+                shown,
+                1 if src.fmt == "csv" else None,
+                _missing_msg(kind, f.name, src, profile),
+                f.name,
+            )
     for group in kind.one_of:
         if not any(g in mapped or g in constants for g in group):
             names = " or ".join(group)
             raise FileFailure(
-                shown, 1 if src.fmt == "csv" else None,
+                shown,
+                1 if src.fmt == "csv" else None,
                 f"missing required column {names} (one of them is needed); columns found: "
                 f"{list_columns(src.columns)}. Add the column, or map it in a profile.",
                 group[0],
@@ -227,7 +256,11 @@ def resolve_columns(
 
 def list_columns(cols: tuple[str, ...] | list[str], limit: int = 12) -> str:
     shown = ", ".join(f'"{c}"' for c in list(cols)[:limit])
-    return shown + (f", ... ({len(cols)} in all)" if len(cols) > limit else "") if cols else "(none)"
+    return (
+        shown + (f", ... ({len(cols)} in all)" if len(cols) > limit else "")
+        if cols
+        else "(none)"
+    )
 
 
 def _missing_msg(kind: Kind, name: str, src: Source, profile: Profile | None) -> str:
@@ -237,11 +270,11 @@ def _missing_msg(kind: Kind, name: str, src: Source, profile: Profile | None) ->
             if d in col:
                 shown = "\\t" if d == "\t" else d
                 return (
-                    f"only one column found, the header is \"{col[:120]}\"; the delimiter looks like "
-                    f"\"{shown}\", which was not detected. Give it in a profile (delimiter = \"{shown}\")."
+                    f'only one column found, the header is "{col[:120]}"; the delimiter looks like '
+                    f'"{shown}", which was not detected. Give it in a profile (delimiter = "{shown}").'
                 )
         return (
-            f"only one column found (\"{col[:120]}\"); missing required column \"{name}\". "
+            f'only one column found ("{col[:120]}"); missing required column "{name}". '
             "Check the delimiter and the header row."
         )
     hint = (
@@ -253,5 +286,3 @@ def _missing_msg(kind: Kind, name: str, src: Source, profile: Profile | None) ->
         f'missing required column "{name}" for the {kind.name} table; columns found: '
         f"{list_columns(src.columns)}. Add the column, or {hint}."
     )
-
-

@@ -31,7 +31,11 @@ _FALSE = ("false", "f", "no", "n", "0", "nein", "")
 
 
 def _raw_expr(
-    f: Field, src: Source, mapped: dict[str, tuple[str, ...]], constants: dict[str, str], p: Params
+    f: Field,
+    src: Source,
+    mapped: dict[str, tuple[str, ...]],
+    constants: dict[str, str],
+    p: Params,
 ) -> str:
     """Text of the cell for field ``f`` (VARCHAR, NULL when absent)."""
     cols = mapped.get(f.name)
@@ -42,7 +46,11 @@ def _raw_expr(
             ]
         else:
             parts = [f"CAST(src.{qi(c)} AS VARCHAR)" for c in cols]
-        expr = parts[0] if len(parts) == 1 else f"NULLIF(concat_ws(' ', {', '.join(parts)}), '')"
+        expr = (
+            parts[0]
+            if len(parts) == 1
+            else f"NULLIF(concat_ws(' ', {', '.join(parts)}), '')"
+        )
         cap = constants.get(f"__capture__{f.name}")
         if cap is not None:
             expr = f"COALESCE(NULLIF(trim({expr}), ''), {p.add(cap)})"
@@ -85,9 +93,15 @@ class _Plan:
 
     selects_a: list[str] = field(default_factory=list)  # raw + mapped text
     selects_b: list[str] = field(default_factory=list)  # typed values
-    errs: dict[str, str] = field(default_factory=dict)  # field -> reason SQL (over typed cols)
-    extra_errs: list[tuple[str, str]] = field(default_factory=list)  # (field, reason SQL)
-    local_ts: list[str] = field(default_factory=list)  # timestamp fields needing tz resolution
+    errs: dict[str, str] = field(
+        default_factory=dict
+    )  # field -> reason SQL (over typed cols)
+    extra_errs: list[tuple[str, str]] = field(
+        default_factory=list
+    )  # (field, reason SQL)
+    local_ts: list[str] = field(
+        default_factory=list
+    )  # timestamp fields needing tz resolution
 
 
 def build_stage(
@@ -104,20 +118,31 @@ def build_stage(
     tz = profile.timezone if profile else "UTC"
     formats = profile.time_formats if profile else ()
     plan = _Plan()
-    present = set(mapped) | {k for k in constants if not k.startswith("__capture__")} | {
-        k.removeprefix("__capture__") for k in constants if k.startswith("__capture__")
-    }
+    present = (
+        set(mapped)
+        | {k for k in constants if not k.startswith("__capture__")}
+        | {
+            k.removeprefix("__capture__")
+            for k in constants
+            if k.startswith("__capture__")
+        }
+    )
     for f in kind.fields:
         raw = _raw_expr(f, src, mapped, constants, p)
         plan.selects_a.append(f"{raw} AS {qi('r__' + f.name)}")
-        plan.selects_a.append(f"{_mapped_expr(f, raw, profile, p)} AS {qi('m__' + f.name)}")
+        plan.selects_a.append(
+            f"{_mapped_expr(f, raw, profile, p)} AS {qi('m__' + f.name)}"
+        )
         m = qi("m__" + f.name)
         r = qi("r__" + f.name)
         v = qi("v__" + f.name)
         shown_raw = f"'\"' || {r} || '\"'"
-        required = (
-            f"WHEN {m} IS NULL THEN "
-            + (sql_text(f"required: {f.name} is empty; fill it in or the row stays in rejects") if f.required else "NULL")
+        required = f"WHEN {m} IS NULL THEN " + (
+            sql_text(
+                f"required: {f.name} is empty; fill it in or the row stays in rejects"
+            )
+            if f.required
+            else "NULL"
         )
         if f.type == "number":
             factor = profile.unit_factor(f.name) if profile else 1.0
@@ -126,13 +151,19 @@ def build_stage(
                 val = f"({val} * {factor!r})"
             plan.selects_b.append(f"{val} AS {v}")
             if decimal == ",":
-                nan_hint = sql_text(f"not a number: {f.name} is ") + f" || {shown_raw} || " + sql_text("; fix the row")
+                nan_hint = (
+                    sql_text(f"not a number: {f.name} is ")
+                    + f" || {shown_raw} || "
+                    + sql_text("; fix the row")
+                )
             else:
                 nan_hint = (
                     f"CASE WHEN regexp_matches({m}, '^[+-]?[0-9]+,[0-9]+$') THEN "
                     + sql_text(f"not a number: {f.name} is ")
                     + f" || {shown_raw} || "
-                    + sql_text(", which looks like a decimal comma; use a point, or read the file with a profile that sets decimal = \",\"")
+                    + sql_text(
+                        ', which looks like a decimal comma; use a point, or read the file with a profile that sets decimal = ","'
+                    )
                     + " ELSE "
                     + sql_text(f"not a number: {f.name} is ")
                     + f" || {shown_raw} || "
@@ -140,7 +171,9 @@ def build_stage(
                     + " END"
                 )
             rng = range_reason_sql(kind, f.name, v, shown_raw)
-            plan.errs[f.name] = f"CASE {required} WHEN {v} IS NULL THEN {nan_hint} ELSE {rng} END"
+            plan.errs[f.name] = (
+                f"CASE {required} WHEN {v} IS NULL THEN {nan_hint} ELSE {rng} END"
+            )
         elif f.type == "integer":
             d = _number_expr(m, decimal)
             plan.selects_b.append(
@@ -205,7 +238,9 @@ def build_stage(
             (
                 "exposure_time_s",
                 f"CASE WHEN {qi('m__exposure_time_s')} IS NULL AND {qi('m__exposure_mas')} IS NULL THEN "
-                + sql_text("required: neither exposure_time_s nor exposure_mas is given; give one of them")
+                + sql_text(
+                    "required: neither exposure_time_s nor exposure_mas is given; give one of them"
+                )
                 + " END",
             )
         )
@@ -263,9 +298,11 @@ def build_stage(
     for i, (name, sql) in enumerate(plan.extra_errs):
         err_cols.append(f"{sql} AS {qi(f'x{i}__' + name)}")
     ctes.append(f"d AS (SELECT c.*, {', '.join(err_cols)} FROM c)")
-    err_names = ["e___row"] + [f"e__{n}" for n in plan.errs] + [
-        f"x{i}__{n}" for i, (n, _) in enumerate(plan.extra_errs)
-    ]
+    err_names = (
+        ["e___row"]
+        + [f"e__{n}" for n in plan.errs]
+        + [f"x{i}__{n}" for i, (n, _) in enumerate(plan.extra_errs)]
+    )
     any_err = " OR ".join(f"{qi(e)} IS NOT NULL" for e in err_names)
     keep = ["_rec", f"({any_err}) AS _bad"]
     for f in kind.fields:
@@ -326,11 +363,15 @@ def _timestamp(
             f"WHEN {qi('g__' + f.name)} THEN "
             + sql_text(f"non-existent local time: {f.name} is ")
             + f" || {shown_raw} || "
-            + sql_text(f", inside the spring-forward gap of {tz} (clocks skip this hour); fix the generator clock or the row")
+            + sql_text(
+                f", inside the spring-forward gap of {tz} (clocks skip this hour); fix the generator clock or the row"
+            )
             + f" WHEN {qi('a__' + f.name)} THEN "
             + sql_text(f"ambiguous local time: {f.name} is ")
             + f" || {shown_raw} || "
-            + sql_text(f", which occurs twice at the autumn change in {tz}; set time.ambiguous = \"earlier\" or \"later\" in the profile")
+            + sql_text(
+                f', which occurs twice at the autumn change in {tz}; set time.ambiguous = "earlier" or "later" in the profile'
+            )
         )
         # the parse check must look at the local value, v__ is NULL for gaps
     parse_col = qi("l__" + f.name) if local_err else v
@@ -400,7 +441,9 @@ def _tz_ctes(name: str, prev: str, profile: Profile | None, p: Params) -> list[s
     return out
 
 
-def line_expr(con: duckdb.DuckDBPyConnection, src: Source, scan: rd.FileScan) -> tuple[str, str]:
+def line_expr(
+    con: duckdb.DuckDBPyConnection, src: Source, scan: rd.FileScan
+) -> tuple[str, str]:
     """(join clause, line expression) turning record numbers into 1-based file lines.
 
     DuckDB's CSV reader skips blank lines and takes malformed lines out of the stream; both are
@@ -428,5 +471,3 @@ def line_expr(con: duckdb.DuckDBPyConnection, src: Source, scan: rd.FileScan) ->
         " ASOF LEFT JOIN (SELECT t, max(k) AS k FROM _tt_skip GROUP BY t) sk ON s._rec >= sk.t",
         f"(s._rec + {h} + COALESCE(sk.k, 0))",
     )
-
-

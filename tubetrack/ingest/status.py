@@ -47,14 +47,25 @@ class StoreStatus:
                 continue
             if name == "overview":
                 m = pd.DataFrame(
-                    {"item": "", "metric": list(frame.columns), "value": frame.iloc[0].tolist()}
+                    {
+                        "item": "",
+                        "metric": list(frame.columns),
+                        "value": frame.iloc[0].tolist(),
+                    }
                 )
             else:
-                keys = [c for c in frame.columns if not pd.api.types.is_numeric_dtype(frame[c])]
+                keys = [
+                    c
+                    for c in frame.columns
+                    if not pd.api.types.is_numeric_dtype(frame[c])
+                ]
                 metrics = [c for c in frame.columns if c not in keys]
                 item = frame[keys].astype(str).agg("/".join, axis=1) if keys else ""
-                m = frame[metrics].astype(object).assign(item=item).melt(
-                    id_vars=["item"], var_name="metric", value_name="value"
+                m = (
+                    frame[metrics]
+                    .astype(object)
+                    .assign(item=item)
+                    .melt(id_vars=["item"], var_name="metric", value_name="value")
                 )
             m.insert(0, "section", name)
             parts.append(m[["section", "item", "metric", "value"]])

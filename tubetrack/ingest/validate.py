@@ -29,16 +29,26 @@ class Range:
 #: Valid ranges per canonical column [canonical unit]. # common practice (diagnostic X-ray
 #: generators: IEC 60601-2-54 scope covers radiography and fluoroscopy up to 150 kV; we allow 160).
 RANGES: dict[str, Range] = {
-    "tube_voltage_kv": Range(20.0, 160.0, "kV", "diagnostic radiography and fluoroscopy"),
-    "tube_current_ma": Range(0.1, 2000.0, "mA", "set mA station; fluoroscopy from 0.1 mA"),
-    "tube_current_measured_ma": Range(0.0, 2000.0, "mA", "0 allowed: an aborted exposure"),
+    "tube_voltage_kv": Range(
+        20.0, 160.0, "kV", "diagnostic radiography and fluoroscopy"
+    ),
+    "tube_current_ma": Range(
+        0.1, 2000.0, "mA", "set mA station; fluoroscopy from 0.1 mA"
+    ),
+    "tube_current_measured_ma": Range(
+        0.0, 2000.0, "mA", "0 allowed: an aborted exposure"
+    ),
     "exposure_time_s": Range(0.0005, 30.0, "s", "single radiographic exposure"),
-    "exposure_mas": Range(0.00005, 60000.0, "mAs", "0.1 mA x 0.5 ms up to 2000 mA x 30 s"),
+    "exposure_mas": Range(
+        0.00005, 60000.0, "mAs", "0.1 mA x 0.5 ms up to 2000 mA x 30 s"
+    ),
     "filament_current_a": Range(1.0, 12.0, "A", "tungsten filament heating current"),
     "filament_voltage_v": Range(1.0, 20.0, "V", "filament heating voltage"),
     # common practice: the prep (boost + anode run-up) lasts as long as the operator holds the
     # first button stage, until the generator's hold time-out of some tens of seconds
-    "prep_time_s": Range(0.0, 30.0, "s", "filament boost and anode run-up; held prep times out"),
+    "prep_time_s": Range(
+        0.0, 30.0, "s", "filament boost and anode run-up; held prep times out"
+    ),
     "arc_count": Range(0.0, 1000.0, "count", "arcs logged during one exposure"),
     "criticality_weight": Range(0.0, 100.0, "", "relative weight, 1 = typical"),
     "uptime_target_pct": Range(0.0, 100.0, "%", "contracted availability"),
@@ -97,7 +107,9 @@ def range_reason_sql(kind: Kind, name: str, value: str, raw: str) -> str | None:
         # fluoroscopy systems may log long runs (column _fluoro set by the reader from systems)
         fl = FLUORO_MAX_EXPOSURE_TIME_S
         high = f"(CASE WHEN _fluoro THEN {_num(fl)} ELSE {high} END)"
-        high_txt = f"(CASE WHEN _fluoro THEN '{_fmt(fl)} (fluoroscopy)' ELSE {high_txt} END)"
+        high_txt = (
+            f"(CASE WHEN _fluoro THEN '{_fmt(fl)} (fluoroscopy)' ELSE {high_txt} END)"
+        )
     unit = f" {rng.unit}" if rng.unit and rng.unit != "count" else ""
     parts = [finite]
     mix = MIXUPS.get(name)
