@@ -430,3 +430,21 @@ def test_bad_profiles_exit_1_with_message(tmp_path, name, fragment):
     assert res.exit_code == 1
     assert res.stderr.startswith(f"Error: profile {prof}: {fragment}")
     assert res.stdout == ""
+
+
+def test_corrupt_parquet_is_rejected_whole(tmp_path):
+    f = tmp_path / "exposures-broken.parquet"
+    f.write_bytes(b"PAR1" + b"\x00garbage" * 10)
+    con, rep = _one(f)
+    assert rep.status == "failed"
+    assert rep.message.startswith(f"{f}: not a readable Parquet file (")
+    assert rep.message.endswith("). Re-export the file.")
+
+
+def test_unsupported_file_named_explicitly_is_reported_skipped(tmp_path):
+    f = tmp_path / "exposures.xlsx"
+    f.write_bytes(b"PK\x03\x04 not really a workbook")
+    res, out = _cli(tmp_path, f)
+    assert res.exit_code == 0
+    assert out[0]["status"] == "skipped"
+    assert out[0]["message"].startswith(f"{f}: not a log format tubetrack reads")
