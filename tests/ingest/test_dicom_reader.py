@@ -508,6 +508,7 @@ def test_device_map_file_beside_the_files(con, tmp_path):
     (tmp_path / "dicom-devices.csv").write_text(
         "device_serial,station_name,system_id\nSER-0001,,R-07\n,,R-08\n"
     )
+    con.execute("INSERT INTO systems (system_id) VALUES ('R-07')")
     rng = random.Random(13)
     p = [
         _image(tmp_path / s, "i", rng, datetime(2025, 1, 1, 8, k))
@@ -522,11 +523,22 @@ def test_device_map_file_beside_the_files(con, tmp_path):
     assert set(_rows(con)["system_id"]) == {"R-07"}
 
 
-def test_map_device_needs_an_identity(con):
-    from tubetrack.errors import InputError
+def test_map_device_needs_an_identity_and_a_known_system(con, tmp_path):
+    from tubetrack.errors import InputError, NotFoundError
 
     with pytest.raises(InputError, match="serial number"):
         dicom.map_device(con, "R-01")
+    with pytest.raises(NotFoundError, match="not in the store"):
+        dicom.map_device(con, "R-99", device_serial="X1")
+    csv = tmp_path / "dicom-devices-typo.csv"
+    csv.write_text("device_serial,station_name,system_id\nX1,,R-99\n")
+    rep = dicom.load_device_map(con, csv)
+    assert (rep["rows_accepted"], rep["rows_rejected"]) == (0, 1)
+    assert con.execute("SELECT raw_value FROM rejects").fetchone()[0] == "R-99"
+    # once the system exists, the same file applies (a file with rejects is not a no-op)
+    con.execute("INSERT INTO systems (system_id) VALUES ('R-99')")
+    again = dicom.load_device_map(con, csv)
+    assert (again["status"], again["rows_accepted"]) == ("ingested", 1)
 
 
 # ---------------------------------------------------------------------------------------------

@@ -61,6 +61,7 @@ def test_round_trip_counts_values_and_size(tmp_path):
     images = [p for p in files if p.parent.name == "images"]
     assert len(images) == 15  # 5 % of 300 exposures, each a duplicate of an RDSR event
     con = store.connect(":memory:")
+    con.execute("INSERT INTO systems (system_id) VALUES ('INV-R01'), ('INV-M01')")
     reps = ingest_dicom_paths(con, paths)
     got = con.execute("SELECT * FROM exposures ORDER BY system_id, timestamp_utc").df()
     want = exp.sort_values(["system_id", "timestamp_utc"]).reset_index(drop=True)

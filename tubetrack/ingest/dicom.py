@@ -54,7 +54,7 @@ from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from tubetrack.errors import InputError
+from tubetrack.errors import InputError, NotFoundError
 from tubetrack.store import utcnow
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -826,6 +826,8 @@ def map_device(
     ------
     InputError
         Neither a serial number nor a station name was given, or ``system_id`` is empty.
+    NotFoundError
+        ``system_id`` is not in the store's systems table.
     """
     serial = (device_serial or "").strip() or None
     station = (station_name or "").strip() or None
@@ -838,6 +840,14 @@ def map_device(
         raise InputError(
             f"map-device {system_id}: give the device serial number (DeviceSerialNumber) or the "
             "station name (StationName) of the device to map."
+        )
+    known = con.execute(
+        "SELECT count(*) FROM systems WHERE system_id = ?", [system_id]
+    ).fetchone()
+    if not known or not known[0]:
+        raise NotFoundError(
+            f"map-device: system {system_id!r} is not in the store. Ingest the inventory "
+            "(systems.csv) first, or check the spelling of the system id."
         )
     from tubetrack.store import transaction
 
@@ -934,7 +944,7 @@ def load_device_map(con: duckdb.DuckDBPyConnection, path: str | Path) -> dict[st
     sha = hashlib.sha256(p.read_bytes()).hexdigest()
     prev = con.execute(
         "SELECT path FROM ingest_files WHERE sha256 = ? AND table_kind = 'dicom_devices' "
-        "AND status = 'ingested' ORDER BY file_id LIMIT 1",
+        "AND status = 'ingested' AND rows_rejected = 0 ORDER BY file_id LIMIT 1",
         [sha],
     ).fetchone()
     if prev:
@@ -966,9 +976,15 @@ def load_device_map(con: duckdb.DuckDBPyConnection, path: str | Path) -> dict[st
                 (i, "device_serial", "", "neither device_serial nor station_name given")
             )
             continue
-        res = map_device(
-            con, sys_id, device_serial=r.device_serial, station_name=r.station_name
-        )
+        try:
+            res = map_device(
+                con, sys_id, device_serial=r.device_serial, station_name=r.station_name
+            )
+        except NotFoundError:
+            rejects.append(
+                (i, "system_id", sys_id, "system_id is not in the store's systems")
+            )
+            continue
         moved += res["moved"]
         accepted += 1
     row = con.execute(
