@@ -150,7 +150,7 @@ def backtest_rul_chart(cases: pd.DataFrame, alpha: float = 0.2) -> alt.LayerChar
         (frame["true_rul_days"] >= frame["rul_days_p10"]) & (frame["true_rul_days"] <= frame["rul_days_p90"]),
         "inside P10-P90", "outside P10-P90",
     )
-    top = float(np.nanmax(frame[["true_rul_days", "rul_days_p90"]].to_numpy(float))) if len(frame) else 365.0
+    top = float(np.nanmax(frame["true_rul_days"].to_numpy(float))) * 1.05 if len(frame) else 365.0
     top = max(top, 1.0)
     cone = pd.DataFrame({"t": [0.0, top], "lo": [0.0, top * (1 - alpha)], "hi": [0.0, top * (1 + alpha)]})
     datasets = {
@@ -181,7 +181,8 @@ def backtest_rul_chart(cases: pd.DataFrame, alpha: float = 0.2) -> alt.LayerChar
             y=alt.Y("rul_days_p50:Q", title=y_title),
             color=alt.Color("covered:N", title="true date", scale=alt.Scale(
                 domain=["inside P10-P90", "outside P10-P90"], range=[FIT_COLOUR, PROJECTION_COLOUR])),
-            shape=alt.Shape("covered:N", title="true date"),
+            shape=alt.Shape("covered:N", title="true date",
+                            scale=alt.Scale(domain=["inside P10-P90", "outside P10-P90"])),
             tooltip=[
                 alt.Tooltip("tube_id:N", title="tube"),
                 alt.Tooltip("utcyearmonthdate(cutoff):T", title="cut-off [UTC]"),

@@ -195,7 +195,7 @@ def weibull_plot(
             curve, ["time", "fraction_failed", "weibull_y", "weibull_y_lo", "weibull_y_hi"], "weibull_curve"
         ),
     }
-    x = alt.X("time:Q", title=clock_title + " (log scale)", scale=alt.Scale(type="log"))
+    x = alt.X("time:Q", title=clock_title + " (log scale)", scale=alt.Scale(type="log", nice=False))
     y_axis = alt.Axis(
         values=ticks,
         labelExpr="format(1 - exp(-exp(datum.value)), '.3~p')",

@@ -352,7 +352,7 @@ def _backtest_frames(con: duckdb.DuckDBPyConnection) -> dict[str, Any]:
     rename = {}
     for want, options in {
         "true_rul_days": ("true_rul_days", "rul_true_days", "actual_rul_days"),
-        "cutoff": ("cutoff", "cutoff_utc", "as_of", "cut_off_utc"),
+        "cutoff": ("cutoff", "cut_off", "cutoff_utc", "as_of", "cut_off_utc"),
         "cause": ("cause", "removal_reason", "true_cause"),
     }.items():
         for o in options:
@@ -361,19 +361,24 @@ def _backtest_frames(con: duckdb.DuckDBPyConnection) -> dict[str, Any]:
                 break
     c = cases.rename(columns=rename)
     if {"true_rul_days", "rul_days_p10", "rul_days_p50", "rul_days_p90"} <= set(c.columns):
-        out["backtest_cases"] = c
+        known = c["true_rul_days"].notna()
+        if "cause" in c.columns:
+            # Forecast against actual is drawn for the failures the filament can foresee.
+            known &= c["cause"].eq("filament")
+        out["backtest_cases"] = c[known]
     pairs = []
     for h in HORIZONS_DAYS:
         p_col = f"p_end_of_life_{h}d"
-        outcome = next((o for o in (f"failed_within_{h}d", f"event_{h}d", f"outcome_{h}d", f"eol_within_{h}d")
-                        if o in c.columns), None)
-        if p_col in c.columns and outcome is not None:
-            pairs.append(pd.DataFrame({"horizon_days": h, "p_predicted": c[p_col],
-                                       "outcome": c[outcome].astype(float)}).dropna())
-        elif p_col in c.columns and "true_rul_days" in c.columns:
-            known = c["true_rul_days"].notna()
-            pairs.append(pd.DataFrame({"horizon_days": h, "p_predicted": c.loc[known, p_col],
-                                       "outcome": (c.loc[known, "true_rul_days"] <= h).astype(float)}))
+        if p_col not in c.columns:
+            continue
+        outcome = next((o for o in (f"filament_within_{h}d", f"failed_within_{h}d", f"event_{h}d",
+                                    f"outcome_{h}d") if o in c.columns), None)
+        usable = c[p_col].notna()
+        if f"censored_{h}d" in c.columns:
+            usable &= ~c[f"censored_{h}d"].astype(bool)
+        if outcome is not None:
+            pairs.append(pd.DataFrame({"horizon_days": h, "p_predicted": c.loc[usable, p_col],
+                                       "outcome": c.loc[usable, outcome].astype(float)}))
     if pairs:
         out["backtest_outcomes"] = pd.concat(pairs, ignore_index=True)
     return out
