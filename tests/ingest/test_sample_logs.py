@@ -67,6 +67,14 @@ def test_ingest_sample_logs_end_to_end(tmp_path, monkeypatch):
             [f"sample_logs/{path}"],
         ).fetchone()[0]
         assert dups >= 1
+    # the foreign site's rows are in time order, across the repeated autumn hour too: the UTC
+    # times, read back in line order, never go back
+    inversions = con.execute(
+        "SELECT count(*) FROM (SELECT timestamp_utc < lag(timestamp_utc) OVER "
+        "(PARTITION BY source_file ORDER BY source_line) AS back FROM exposures "
+        "WHERE source_file LIKE '%genlog_%') WHERE back"
+    ).fetchone()[0]
+    assert inversions == 0
     inv = con.execute(
         "SELECT (SELECT count(*) FROM systems), (SELECT count(*) FROM tubes)"
     ).fetchone()
