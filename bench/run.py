@@ -302,8 +302,8 @@ def _make_dicom(ds: Dataset, out: Path, n: int) -> None:
     code = (
         "import sys,duckdb;from pathlib import Path;"
         "from tubetrack.ingest.dicom_synth import write_dicom_workload;"
-        "con=duckdb.connect();"
-        "e=con.execute(\"SELECT * FROM read_csv('\"+sys.argv[1]+\"') ORDER BY timestamp_utc DESC LIMIT \"+sys.argv[3]).df();"
+        "con=duckdb.connect();con.execute(\"SET TimeZone='UTC'\");"
+        "e=con.execute(\"SELECT * REPLACE (CAST(timestamp_utc AS TIMESTAMP) AS timestamp_utc) FROM read_csv('\"+sys.argv[1]+\"') ORDER BY timestamp_utc DESC LIMIT \"+sys.argv[3]).df();"
         "s=con.execute(\"SELECT * FROM read_csv('\"+sys.argv[4]+\"')\").df();"
         "s=s[s.system_id.isin(e.system_id.unique())];"
         "write_dicom_workload(e, s, Path(sys.argv[2]), 7)"
