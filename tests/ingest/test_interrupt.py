@@ -74,7 +74,9 @@ def _totals(db: Path):
         ).fetchall()
         rejects = con.execute("SELECT count(*) FROM rejects").fetchone()[0]
         checksum = con.execute(
-            "SELECT sum(epoch(timestamp_utc)), sum(filament_current_a) FROM exposures"
+            # integer sums: exact whatever order the parallel aggregation adds rows in
+            "SELECT sum(epoch_ms(timestamp_utc)::HUGEINT), "
+            "sum(round(filament_current_a * 1e6)::HUGEINT) FROM exposures"
         ).fetchone()
     finally:
         con.close()

@@ -373,3 +373,49 @@ def register(app: typer.Typer) -> None:
                 frame = st.sections[name]
                 if not frame.empty:
                     emit(frame, fmt, title=name.replace("_", " "))
+
+    @app.command("map-device")
+    @handle_errors
+    def map_device_cmd(
+        system_id: Annotated[
+            str, typer.Argument(help="System (in the store) the device is.")
+        ],
+        serial: Annotated[
+            str | None,
+            typer.Option("--serial", help="DICOM DeviceSerialNumber of the device."),
+        ] = None,
+        station: Annotated[
+            str | None,
+            typer.Option("--station", help="DICOM StationName of the device."),
+        ] = None,
+        db: DbOption = None,
+        fmt: FormatOption = OutputFormat.table,
+    ) -> None:
+        """Map a DICOM device (serial number and/or station name) to a system: its exposures,
+        so far kept under an unmapped placeholder system, move to SYSTEM_ID. `tubetrack status`
+        lists the unmapped devices."""
+        import pandas as pd
+
+        from tubetrack import store
+        from tubetrack.ingest.dicom import map_device
+
+        con = store.connect(db)
+        try:
+            moved = map_device(
+                con, system_id, device_serial=serial, station_name=station
+            )
+        finally:
+            con.close()
+        emit(
+            pd.DataFrame(
+                [
+                    {
+                        "system_id": system_id,
+                        "device_serial": serial,
+                        "station_name": station,
+                        **moved,
+                    }
+                ]
+            ),
+            fmt,
+        )

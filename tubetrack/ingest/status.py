@@ -134,9 +134,11 @@ def store_status(con: duckdb.DuckDBPyConnection) -> StoreStatus:
         ),
         "unmapped_dicom_devices": q(
             """
-            SELECT COALESCE(device_serial, '') AS device_serial,
-                   COALESCE(station_name, '') AS station_name, system_id
-            FROM dicom_devices WHERE NOT mapped ORDER BY ALL
+            SELECT COALESCE(d.device_serial, '') AS device_serial,
+                   COALESCE(d.station_name, '') AS station_name, d.system_id,
+                   (SELECT count(*) FROM exposures e WHERE e.system_id = d.system_id)
+                       AS exposures
+            FROM dicom_devices d WHERE NOT d.mapped ORDER BY ALL
             """
         ),
     }
