@@ -229,6 +229,33 @@ def _fmt_cell(column: str, value: Any) -> str:
     return esc(value)
 
 
+def _row_strings(frame: pd.DataFrame, cols: list[tuple[str, str]], link: dict[str, str] | None,
+                 link_col: str | None) -> list[str]:
+    """``<tr>`` strings of ``frame``, formatted column by column (no per-row pandas work)."""
+    per_col = []
+    for name, _ in cols:
+        values = frame[name].to_numpy(dtype=object)
+        cells = []
+        for value in values:
+            text = _fmt_cell(name, value)
+            if link is not None and name == link_col and str(value) in link:
+                text = f'<a href="{esc(link[str(value)])}">{text}</a>'
+            num = isinstance(value, (int, float)) and not isinstance(value, bool)
+            cells.append(f'<td class="num">{text}</td>' if num else f"<td>{text}</td>")
+        per_col.append(cells)
+    return ["<tr>" + "".join(row) + "</tr>" for row in zip(*per_col, strict=True)] if per_col else []
+
+
+def _table_html(cols: list[tuple[str, str]], rows: list[str], total: int, max_rows: int, caption: str) -> str:
+    head = "".join(f'<th scope="col">{esc(h)}</th>' for _, h in cols)
+    more = f'<p class="more">Showing {max_rows:,} of {total:,} rows.</p>' if total > max_rows else ""
+    cap = f"<caption>{esc(caption)}</caption>" if caption else ""
+    return (
+        f'<div class="table-wrap"><table>{cap}<thead><tr>{head}</tr></thead>'
+        f'<tbody>{"".join(rows)}</tbody></table></div>{more}'
+    )
+
+
 def html_table(
     frame: pd.DataFrame | None,
     columns: list[tuple[str, str]] | None = None,
@@ -252,27 +279,8 @@ def html_table(
         return f'<p class="empty">{esc(empty)}</p>'
     cols = columns or [(c, c) for c in frame.columns]
     cols = [(c, h) for c, h in cols if c in frame.columns]
-    head = "".join(f'<th scope="col">{esc(h)}</th>' for _, h in cols)
-    body = []
-    view = frame.head(max_rows)
-    names = [c for c, _ in cols]
-    for row in view[names].itertuples(index=False, name=None):
-        cells = []
-        for name, value in zip(names, row, strict=True):
-            text = _fmt_cell(name, value)
-            if link is not None and name == link_col and str(value) in link:
-                text = f'<a href="{esc(link[str(value)])}">{text}</a>'
-            cls = ' class="num"' if isinstance(value, (int, float)) and not isinstance(value, bool) else ""
-            cells.append(f"<td{cls}>{text}</td>")
-        body.append("<tr>" + "".join(cells) + "</tr>")
-    more = ""
-    if len(frame) > max_rows:
-        more = f'<p class="more">Showing {max_rows:,} of {len(frame):,} rows.</p>'
-    cap = f"<caption>{esc(caption)}</caption>" if caption else ""
-    return (
-        f'<div class="table-wrap"><table>{cap}<thead><tr>{head}</tr></thead>'
-        f'<tbody>{"".join(body)}</tbody></table></div>{more}'
-    )
+    rows = _row_strings(frame.head(max_rows), cols, link, link_col)
+    return _table_html(cols, rows, len(frame), max_rows, caption)
 
 
 CSS = """
@@ -621,15 +629,18 @@ def _grouped_json(frame: pd.DataFrame, keys: list[str], columns: list[str]) -> d
         chunk = dataset_frame(data.iloc[start:start + step], columns, "grouped")
         parts.append(chunk.to_json(orient="records", lines=True, double_precision=7))
     lines = "".join(p if p.endswith("\n") else p + "\n" for p in parts).split("\n")[: len(data)]
-    codes = key_frame.astype(str).agg("\x1f".join, axis=1).to_numpy() if len(keys) > 1 else key_frame[keys[0]].astype(str).to_numpy()
+    joined = key_frame[keys[0]].astype(str)
+    for k in keys[1:]:
+        joined = joined + "\x1f" + key_frame[k].astype(str)
+    codes = joined.to_numpy()
     change = np.flatnonzero(np.concatenate([[True], codes[1:] != codes[:-1]]))
     ends = np.concatenate([change[1:], [len(codes)]])
     out: dict[tuple, str] = {}
     for s, e in zip(change, ends, strict=True):
-        key = tuple(key_frame.iloc[s]) if len(keys) > 1 else (key_frame.iloc[s, 0],)
+        key = tuple(str(codes[s]).split("\x1f"))
         if e - s > MAX_ROWS_PER_DATASET:
             raise ValueError(f"dataset for {key} has {e - s} rows; aggregate before charting")
-        out[tuple(str(k) for k in key)] = "[" + ",".join(lines[s:e]) + "]"
+        out[key] = "[" + ",".join(lines[s:e]) + "]"
     return out
 
 
@@ -960,7 +971,8 @@ def _write_tube_pages(inputs: ReportInputs, out: Path, wanted: list[str], pages:
     max_points = int(min(C.health.MAX_POINTS_PER_SERIES, max(30, MAX_DRIFT_POINTS_TOTAL // n_series)))
     obs = C.aggregate_drift(drift, max_points) if len(drift) else pd.DataFrame()
     if len(obs):
-        obs["station"] = obs["tube_current_ma"].map(lambda v: f"{v:g} mA")
+        labels = {v: f"{v:g} mA" for v in obs["tube_current_ma"].unique()}
+        obs["station"] = obs["tube_current_ma"].map(labels)
     dia = only_wanted(inputs.diameter)
     proj = only_wanted(inputs.projection)
     cps = only_wanted(inputs.changepoints)
@@ -1012,29 +1024,52 @@ def _write_tube_pages(inputs: ReportInputs, out: Path, wanted: list[str], pages:
 
     h = health.copy()
     h["tube_id"] = h["tube_id"].astype(str)
-    h_groups = {k: g for k, g in h[h["tube_id"].isin(wanted_set)].groupby("tube_id", sort=False)}
-    cdf_groups: dict[str, pd.DataFrame] = {}
+    h = h[h["tube_id"].isin(wanted_set)].reset_index(drop=True)
+    status_cols = [c for c in STATUS_COLUMNS if c[0] in h.columns]
+    status_rows = _row_strings(h, status_cols, None, None)
+    h_groups: dict[str, tuple[pd.DataFrame, list[str]]] = {}
+    for k, idx in h.groupby("tube_id", sort=False).indices.items():
+        h_groups[k] = (h.iloc[idx[:1]], [status_rows[i] for i in idx])
+    cdf_groups: dict[str, str] = {}
     cdf = only_wanted(inputs.rul_cdf)
     if len(cdf):
-        cdf_groups = {k: g for k, g in cdf.groupby("tube_id", sort=False)}
+        wide = cdf.pivot_table(index=["tube_id", "focal_spot"], columns="horizon_days",
+                               values="p_end_of_life", aggfunc="first")
+        wide.columns = [f"p_{int(c)}" for c in wide.columns]
+        wide = wide.reset_index()
+        wide = wide.dropna(axis=1, how="all")
+        cdf_cols = [("focal_spot", "focal spot")] + [(c, f"{c[2:]} d") for c in wide.columns if c.startswith("p_")]
+        cdf_rows = _row_strings(wide, cdf_cols, None, None)
+        cdf_groups = {k: _table_html(cdf_cols, [cdf_rows[i] for i in idx], len(idx), len(idx) + 1,
+                                     "Probability of end of life within each horizon")
+                      for k, idx in wide.groupby("tube_id", sort=False).indices.items()}
     tubes_info: dict[str, dict[str, Any]] = {}
     if _nonempty(inputs.tubes):
         t = inputs.tubes.copy()  # type: ignore[union-attr]
         t["tube_id"] = t["tube_id"].astype(str)
         tubes_info = {r["tube_id"]: r for r in t[t["tube_id"].isin(wanted_set)].to_dict("records")}
 
+    health_focals = h.groupby("tube_id", sort=False)["focal_spot"].unique().to_dict()
     nav = [("../fleet.html", "Fleet report"), ("#status", "Status"), ("#drift", "Drift and wear"),
            ("#faults", "Faults"), ("../fleet.html#methods", "Methods")]
     paths: list[Path] = []
+    # Pages are built here and written by a few threads, so disk latency overlaps the next page.
+    from concurrent.futures import ThreadPoolExecutor
+
+    writer = ThreadPoolExecutor(max_workers=4)
+    writes = []
     for i, tube in enumerate(wanted):
         if i and i % 500 == 0:
             say(f"tube pages {i:,}/{len(wanted):,}")
-        rows = h_groups.get(tube)
-        if rows is None:
+        got = h_groups.get(tube)
+        if got is None:
             continue
-        body = [_tube_status(tube, rows, tubes_info.get(tube), cdf_groups.get(tube))]
+        rows, row_html = got
+        focals = sorted(str(f) for f in health_focals.get(tube, ()))
+        body = [_tube_status(rows, _table_html(status_cols, row_html, len(row_html), len(row_html) + 1, ""),
+                             tubes_info.get(tube), cdf_groups.get(tube, ""))]
         chart_html = []
-        for focal in sorted(rows["focal_spot"].astype(str).unique()):
+        for focal in focals:
             key = (tube, focal)
             datasets = {
                 "drift_points": grouped["drift_points"].get(key, "[]"),
@@ -1066,13 +1101,14 @@ def _write_tube_pages(inputs: ReportInputs, out: Path, wanted: list[str], pages:
         else:
             body.append(_section("faults", "Arcs and faults", '<p class="empty">No fault events recorded for this tube.</p>'))
         path = out / pages[tube]
-        path.write_text(
-            _page(title=f"tubetrack tube {tube}", heading=f"Tube {tube}", meta_html=meta, nav=nav,
-                  body="".join(body), footer_html=footer,
-                  js_inline=bundle if mode == "inline" else None, js_src=js_src),
-            encoding="utf-8",
-        )
+        text = _page(title=f"tubetrack tube {tube}", heading=f"Tube {tube}", meta_html=meta, nav=nav,
+                     body="".join(body), footer_html=footer,
+                     js_inline=bundle if mode == "inline" else None, js_src=js_src)
+        writes.append(writer.submit(path.write_text, text, encoding="utf-8"))
         paths.append(path)
+    for w in writes:
+        w.result()  # re-raise any write error
+    writer.shutdown()
     return paths
 
 
@@ -1090,11 +1126,20 @@ def _thin_groups(frame: pd.DataFrame, keys: list[str], max_points: int = 160) ->
     return data[keep].reset_index(drop=True)
 
 
-def _tube_status(tube: str, rows: pd.DataFrame, info: dict[str, Any] | None, cdf: pd.DataFrame | None) -> str:
+STATUS_COLUMNS = [
+    ("focal_spot", "focal spot"), ("health_level", "level"), ("reason", "reason"),
+    ("diameter_loss_pct", "diameter loss [%]"), ("diameter_loss_pct_se", "standard error [%]"),
+    ("rul_days_p10", "remaining life P10 [days]"), ("rul_days_p50", "P50 [days]"), ("rul_days_p90", "P90 [days]"),
+    ("p_end_of_life_30d", "P(end of life) 30 d"), ("p_end_of_life_90d", "90 d"),
+    ("p_end_of_life_180d", "180 d"), ("arc_rate_per_1000", "arcs per 1,000 exposures"),
+]
+
+
+def _tube_status(first_row: pd.DataFrame, table: str, info: dict[str, Any] | None, cdf_html: str) -> str:
     import pandas as pd
 
     facts = []
-    first = rows.iloc[0]
+    first = first_row.iloc[0]
     facts.append(("system", first.get("system_id")))
     facts.append(("site", first.get("site")))
     if info:
@@ -1103,19 +1148,4 @@ def _tube_status(tube: str, rows: pd.DataFrame, info: dict[str, Any] | None, cdf
         if info.get("removed_at_utc") is not None and not pd.isna(info.get("removed_at_utc")):
             facts.append(("removed", f"{_fmt_time(info.get('removed_at_utc'))} ({info.get('removal_reason') or 'reason not given'})"))
     dl = "".join(f'<div class="card"><div class="k">{esc(k)}</div><div>{esc(v)}</div></div>' for k, v in facts)
-    table = html_table(
-        rows,
-        [("focal_spot", "focal spot"), ("health_level", "level"), ("reason", "reason"),
-         ("diameter_loss_pct", "diameter loss [%]"), ("diameter_loss_pct_se", "standard error [%]"),
-         ("rul_days_p10", "remaining life P10 [days]"), ("rul_days_p50", "P50 [days]"), ("rul_days_p90", "P90 [days]"),
-         ("p_end_of_life_30d", "P(end of life) 30 d"), ("p_end_of_life_90d", "90 d"),
-         ("p_end_of_life_180d", "180 d"), ("arc_rate_per_1000", "arcs per 1,000 exposures")],
-    )
-    cdf_html = ""
-    if cdf is not None and len(cdf):
-        wide = cdf.pivot_table(index="focal_spot", columns="horizon_days", values="p_end_of_life", aggfunc="first")
-        wide.columns = [f"p_{int(c)}" for c in wide.columns]
-        wide = wide.reset_index()
-        cols = [("focal_spot", "focal spot")] + [(c, f"{c[2:]} d") for c in wide.columns if c.startswith("p_")]
-        cdf_html = html_table(wide, cols, caption="Probability of end of life within each horizon")
     return _section("status", "Status", f'<div class="cards">{dl}</div>{table}{cdf_html}')

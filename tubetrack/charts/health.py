@@ -252,7 +252,7 @@ def drift_layers(title: str = "") -> alt.VConcatChart:
         )
     )
     top = alt.layer(points, fit, changes).properties(
-        title="Filament current at each mA station (points: measured; lines: fitted trend)",
+        title="Filament current per mA station (points: measured, lines: fitted trend)",
         width=CHART_WIDTH,
         height=220,
     )
@@ -317,7 +317,7 @@ def drift_layers(title: str = "") -> alt.VConcatChart:
         )
     )
     bottom = alt.layer(thr_band, band, fan, history, median, thr, changes).properties(
-        title="Estimated diameter loss, projection P10-P90 (orange) and end-of-life threshold (purple)",
+        title="Estimated diameter loss, projection P10-P90 and end-of-life threshold",
         width=CHART_WIDTH,
         height=220,
     )
@@ -403,7 +403,8 @@ def diameter_chart(
     if order is None:
         latest = frame.sort_values("day").groupby("series")["diameter_loss_pct"].last()
         order = list(latest.sort_values(ascending=False).index)
-    keep = [s for s in order if s in set(frame["series"])][:max_tubes]
+    present = set(frame["series"])
+    keep = list(dict.fromkeys(s for s in order if s in present))[:max_tubes]
     frame = frame[frame["series"].isin(keep)]
     parts = [_thin(g, "day", MAX_POINTS_PER_SERIES) for _, g in frame.groupby("series", sort=False)]
     frame = pd.concat(parts, ignore_index=True) if parts else frame
