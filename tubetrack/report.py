@@ -864,7 +864,9 @@ def _fleet_body(inputs: ReportInputs, blocks: list[tuple[str, str, str, str]], i
         cards.append((f"{len(inputs.systems):,}", "systems"))  # type: ignore[arg-type]
     if "health_rank" in health.columns and len(health):
         alert = health[health["health_rank"] >= 2]["tube_id"].nunique()
-        cards.append((f"{alert:,}", "tubes at level 3 or above"))
+        third = health.loc[health["health_rank"] == 2, "health_level"]
+        label = f"tubes at '{third.iloc[0]}' or worse" if len(third) else "tubes at level 3 of the scale or worse"
+        cards.append((f"{alert:,}", label))
     if _nonempty(inputs.forecast) and "expected_replacements" in inputs.forecast.columns:  # type: ignore[union-attr]
         total = float(inputs.forecast["expected_replacements"].sum())  # type: ignore[index]
         cards.append((f"{total:.1f}", f"expected replacements, next {len(inputs.forecast)} months"))  # type: ignore[arg-type]

@@ -235,8 +235,11 @@ def test_fleet_overview_uses_ordinal_palette_in_rank_order(results):
     ov = h.assign(p_end_of_life=h["p_end_of_life_90d"], impact=1.0, href="tubes/x.html")
     spec = C.spec_of(C.fleet_overview_chart(ov, 90))
     check_common(spec, {"fleet_overview"})
-    (u,) = units(spec)
-    assert u["mark"]["type"] == "point"
+    u, text = units(spec)
+    assert u["mark"]["type"] == "point" and text["mark"]["type"] == "text"
+    labelled = [r for r in spec["datasets"]["fleet_overview"] if r["label"]]
+    assert 0 < len(labelled) <= 8 and all(r["label"] == r["tube_id"] for r in labelled)
+    assert all(r["health_rank"] >= 2 or r["p_end_of_life"] >= 0.2 for r in labelled)
     enc = u["encoding"]
     assert enc["href"]["field"] == "href"
     levels = C.level_order(ov)

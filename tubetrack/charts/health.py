@@ -531,7 +531,7 @@ def level_scale(levels: list[str]) -> alt.Scale:
     return alt.Scale(domain=levels, range=ordinal_palette(len(levels)))
 
 
-def fleet_overview_chart(overview: pd.DataFrame, horizon_days: int = 90) -> alt.LayerChart:
+def fleet_overview_chart(overview: pd.DataFrame, horizon_days: int = 90, label_top: int = 8) -> alt.LayerChart:
     """Every active tube placed by probability of end of life within the horizon vs impact.
 
     Parameters
@@ -542,6 +542,8 @@ def fleet_overview_chart(overview: pd.DataFrame, horizon_days: int = 90) -> alt.
         href (relative link to the tube's page); optional rul_days_p50 [days], reason.
     horizon_days
         The horizon of ``p_end_of_life`` [days] (axis title).
+    label_top
+        Name at most this many tubes of most concern (level 3 or worse, or >= 20 % chance).
     """
     import altair as alt
 
@@ -555,9 +557,14 @@ def fleet_overview_chart(overview: pd.DataFrame, horizon_days: int = 90) -> alt.
         if col not in frame.columns:
             frame[col] = None
     levels = level_order(frame)
+    # Name the few tubes of most concern next to their points (the rest: tooltips and links).
+    ranked = frame.assign(_r=frame["health_rank"].fillna(-1), _p=frame["p_end_of_life"].fillna(0))
+    top = ranked[(ranked["_r"] >= 2) | (ranked["_p"] >= 0.2)].sort_values(["_r", "_p"], ascending=False)
+    frame["label"] = ""
+    frame.loc[top.index[:label_top], "label"] = frame.loc[top.index[:label_top], "tube_id"].astype(str)
     cols = [
         "tube_id", "system_id", "site", "health_level", "health_rank", "p_end_of_life", "impact",
-        "href", "rul_days_p50", "reason",
+        "href", "rul_days_p50", "reason", "label",
     ]
     datasets = {"fleet_overview": dataset_records(frame, cols, "fleet_overview")}
     points = (
@@ -588,7 +595,12 @@ def fleet_overview_chart(overview: pd.DataFrame, horizon_days: int = 90) -> alt.
             ],
         )
     )
-    return alt.layer(points).properties(
+    labels = (
+        alt.Chart(named("fleet_overview"))
+        .mark_text(align="left", dx=8, dy=-6, fontSize=10, color="#333333")
+        .encode(x="p_end_of_life:Q", y="impact:Q", text="label:N", href=alt.Href("href:N"))
+    )
+    return alt.layer(points, labels).properties(
         title=f"Fleet overview: chance of end of life within {horizon_days} days against impact (click a tube)",
         width=CHART_WIDTH,
         height=320,
