@@ -29,8 +29,14 @@ $(TEST_STAMP): pyproject.toml | $(BIN)/python
 	@touch $@ $(STAMP)
 
 demo: $(STAMP)
-	$(TT) ingest sample_logs
+	$(TT) ingest --quiet sample_logs
 	$(TT) status
+	$(TT) tubes
+	$(TT) fleet forecast
+	$(TT) fleet visits
+	$(TT) fleet uptime --period quarter > /dev/null
+	$(TT) report --out reports
+	@echo "Reports written: $$(pwd)/reports/fleet.html (open it in a browser; works offline)"
 
 test: $(TEST_STAMP)
 	@$(BIN)/python -m pytest -q; rc=$$?; \

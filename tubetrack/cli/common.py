@@ -207,4 +207,7 @@ def emit(
                 # Text(...) never interprets rich markup: strings from logs stay inert.
                 cells.append(Text(str(v)))
         table.add_row(*cells)
-    Console(soft_wrap=False, width=max(100, Console().width)).print(table)
+    console = Console()
+    # On a terminal use its width; piped or captured output gets room for wide tables.
+    width = console.width if console.is_terminal else 200
+    Console(soft_wrap=False, width=max(100, width)).print(table)

@@ -175,6 +175,24 @@ def store_literal(text: str) -> str:
     return "'" + text.replace("'", "''") + "'"
 
 
+_MAX_TABLE_FILES = 20
+
+
+def _by_folder(frame: Any) -> Any:
+    """Per-file ingest summary -> one row per (folder, kind, status) with summed counts."""
+    import pandas as pd
+
+    grouped = frame.assign(
+        folder=frame["path"].map(lambda p: str(Path(p).parent)),
+        files=1,
+    )
+    counts = ["files", "rows_read", "rows_accepted", "rows_rejected", "rows_duplicate"]
+    out = grouped.groupby(["folder", "kind", "status"], dropna=False, sort=True)[
+        counts
+    ].sum()
+    return pd.DataFrame(out.reset_index())
+
+
 def _emit_summary(
     result: IngestSummary, fmt: OutputFormat, quiet: bool, previews: bool = False
 ) -> None:
@@ -191,6 +209,10 @@ def _emit_summary(
             row["preview_rows"] = records(p.rows) if p is not None else []
             row["preview_rejects"] = records(p.rejects) if p is not None else []
         sys.stdout.write(json.dumps(rows, default=_json_default, indent=1) + "\n")
+    elif fmt is OutputFormat.table and len(frame) > _MAX_TABLE_FILES and not previews:
+        # Many files: one row per folder, kind and status keeps the terminal readable;
+        # json/csv still carry one row per file.
+        emit(_by_folder(frame), fmt, title=f"ingest ({len(frame)} files, by folder)")
     else:
         emit(
             frame,
@@ -207,6 +229,8 @@ def _emit_summary(
         if rep.status == "failed":
             typer.echo(f"Error: {rep.message}", err=True)
         elif rep.message and not quiet:
+            if rep.status == "already_ingested" and len(result.reports) > _MAX_TABLE_FILES:
+                continue  # the summary line counts them
             typer.echo(f"{rep.path}: {rep.message}", err=True)
     stderr(("dry run, nothing written: " if previews else "") + result.line(), quiet)
 

@@ -85,8 +85,9 @@ def visit_order(
         oldest_tube_age_days=("age_days", "first"),
         risk_source=("source", lambda s: "+".join(sorted(set(s)))),
     )
-    g["risk"] = -np.expm1(g["log_q"])
-    g["p_filament_event"] = np.where(g["has_fil"], -np.expm1(g["log_qf"]), np.nan)
+    # "+ 0.0" turns -expm1(0) = -0.0 into 0.0, so reasons never read "-0.0 %"
+    g["risk"] = -np.expm1(g["log_q"]) + 0.0
+    g["p_filament_event"] = np.where(g["has_fil"], -np.expm1(g["log_qf"]) + 0.0, np.nan)
     s = systems.set_index("system_id")
     out = g.join(
         s[
