@@ -1,4 +1,4 @@
-"""Sample-log files: layout of contract C, foreign layout round trip, bad rows, size, CLI."""
+"""Sample-log files: layout of the sample_logs tree, foreign layout round trip, bad rows, size, CLI."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""The foreign layout of contract B read through its profile: decimal comma, day-first local
+"""The harrowgate foreign layout read through its profile: decimal comma, day-first local
 times across both DST changes, filament current in mA, F1/F2 focus codes, BOM.
 
 Reference for local time -> UTC is Python's zoneinfo (IANA tz database), never tubetrack code.

@@ -1,4 +1,4 @@
-"""Contract D: every spec-based model function takes scalars or arrays and maps NaN to NaN."""
+"""Physics API: every spec-based model function takes scalars or arrays and maps NaN to NaN."""
 
 from __future__ import annotations
 

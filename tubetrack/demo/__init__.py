@@ -1,6 +1,6 @@
 """The invented demo fleet: a fictional regional hospital group whose tubes age by the physics.
 
-Public API (contract F)::
+Public API::
 
     generate_fleet(seed=20261202, n_systems=24, years=3.2, start="2022-09-01",
                    exposures_per_day=None, physics=True) -> DemoFleet

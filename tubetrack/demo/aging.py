@@ -1,7 +1,7 @@
 """How a demo tube's filaments age: a thin adapter over :mod:`tubetrack.physics`.
 
 The demo never models physics itself. With ``physics=True`` every number comes from the physics
-package (contract D): the filament temperature needed for an exposure's (mA, kV) at the current
+package: the filament temperature needed for an exposure's (mA, kV) at the current
 diameter ratio, the relative diameter-loss rate at that temperature (Hertz-Knudsen-Langmuir
 evaporation), and the filament current the generator must drive. With ``physics=False`` a plain
 empirical stand-in is used (documented below) so that the generator runs, fast, without the
@@ -76,7 +76,7 @@ def _ph(name: str) -> Any:
 
 
 def physics_available() -> bool:
-    """True when :mod:`tubetrack.physics` provides the names the demo needs (contract D)."""
+    """True when :mod:`tubetrack.physics` provides the names the demo needs."""
     try:
         for n in _NAMES:
             _ph(n)

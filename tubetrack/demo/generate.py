@@ -82,7 +82,7 @@ class DemoFleet:
     Attributes
     ----------
     systems, tubes, exposures, calibrations, events, downtime
-        Canonical columns (contract A), times naive UTC. ``exposures`` holds the full workload of
+        Canonical columns (the open layout, docs/log-layout.md), times naive UTC. ``exposures`` holds the full workload of
         every system, including those whose site does not export generator logs.
     truth
         One row per tube: true end (failure or removal) time, cause, failing focal spot,
@@ -451,7 +451,7 @@ def _add_repeated_hour(
     """Night exposures in the repeated autumn hour for the foreign site's around-the-clock units.
 
     On each autumn change of Europe/Berlin, 00:10, 00:40, 01:10 and 01:40 UTC read 02:10, 02:40,
-    02:10, 02:40 local: the same local times twice, in time order (contract B).
+    02:10, 02:40 local: the same local times twice, in time order.
     """
     cand = np.flatnonzero(systems["gen_foreign_layout"].to_numpy() & systems["gen_around_clock"].to_numpy())
     autumn = np.flatnonzero(np.r_[False, np.diff(offset_s) < 0])  # first day on winter time

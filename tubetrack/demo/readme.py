@@ -30,7 +30,7 @@ def readme_text(fleet: DemoFleet, bad_lines: list[dict[str, Any]], dicom_note: s
     sites = sites.merge(sysn, left_on="slug", right_index=True)
     sites["exports"] = [
         "no generator logs; DICOM workload only" if not r.exports_logs
-        else ("foreign layout (contract B)" if r.slug == foreign_site else "our own layout")
+        else ("foreign layout (harrowgate profile)" if r.slug == foreign_site else "our own layout")
         for r in sites.itertuples()
     ]
     site_tab = sites[["slug", "name", "systems", "radiographic", "mobile", "fluoroscopy", "exports"]]
@@ -92,7 +92,7 @@ Tube fates (truth):
 | `<site>/calibrations-<SYSTEM_ID>.csv` | own | filament table after each calibration (installation and preventive maintenance) |
 | `<site>/events.csv` | own | faults: arcs, kV drop-outs, filament faults, rotor faults, overloads (our categories, invented raw codes) |
 | `<site>/downtime.csv` | own | planned and unplanned downtime (some spanning month ends and DST changes) |
-| `{foreign_site}/genlog_<SYSTEM_ID>_<YYYY>.csv.gz` | foreign (contract B) | `;`, decimal comma, BOM, day-first local Europe/Berlin time, F1/F2, ms, filament current in mA; read through `profiles/{foreign_site}.toml`. The repeated autumn hour appears on purpose (rows in time order) |
+| `{foreign_site}/genlog_<SYSTEM_ID>_<YYYY>.csv.gz` | foreign (harrowgate profile) | `;`, decimal comma, BOM, day-first local Europe/Berlin time, F1/F2, ms, filament current in mA; read through `profiles/{foreign_site}.toml`. The repeated autumn hour appears on purpose (rows in time order) |
 | `dicom/` | DICOM | {dicom_note} |
 | `truth.csv` | truth | per tube: true end time and cause, failing focal spot, mean diameter loss at the end and at log start per focal spot, thresholds, hot-spot factors, sensor gains |
 | `truth_diameter.csv.gz` | truth | weekly true mean diameter loss per tube and focal spot (fraction) |

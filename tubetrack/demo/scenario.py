@@ -26,7 +26,7 @@ class Site:
     prefix: str
     n_systems: int
     exports_logs: bool = True  # False: no generator logs, DICOM workload only
-    foreign_layout: bool = False  # True: generator logs in the foreign layout (contract B)
+    foreign_layout: bool = False  # True: generator logs in the foreign layout (harrowgate profile)
     logs_tube_id: bool = True  # the generator writes the tube serial into each exposure row
     logs_measured_ma: bool = False
 

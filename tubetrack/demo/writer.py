@@ -1,12 +1,12 @@
 """Write the demo fleet as log files: our own open layout, the foreign layout, truth, README.
 
-Tree (contract C)::
+Tree::
 
     inventory/systems.csv, inventory/tubes.csv
     <site>/exposures-<SYSTEM_ID>.csv.gz      own layout, all years in one file per system
     <site>/calibrations-<SYSTEM_ID>.csv      filament table after each calibration
     <site>/events.csv, <site>/downtime.csv
-    harrowgate/genlog_<SYSTEM_ID>_<YYYY>.csv.gz   foreign layout (contract B), one per local year
+    harrowgate/genlog_<SYSTEM_ID>_<YYYY>.csv.gz   foreign layout (harrowgate profile), one per local year
     dicom/                                   written by tubetrack.ingest.dicom_synth (if present)
     truth.csv, truth_diameter.csv.gz, truth_steps.csv   ground truth, never ingested
     README.md
@@ -166,7 +166,7 @@ def _own_exposures(e: pd.DataFrame, logs_tube: bool, logs_measured: bool) -> pd.
 
 
 def foreign_exposures(e: pd.DataFrame, tz: str = "Europe/Berlin") -> pd.DataFrame:
-    """Exposures in the foreign layout of contract B (local day-first times, ms, mA, F1/F2).
+    """Exposures in the harrowgate foreign layout (local day-first times, ms, mA, F1/F2).
 
     Local times come from the UTC times by the IANA rules of ``tz``; rows stay in time order,
     so the repeated autumn hour can be resolved by order on reading.
@@ -212,7 +212,7 @@ def write_sample_logs(
     bad_rows: bool = True,
     dicom: bool = True,
 ) -> list[Path]:
-    """Write ``fleet`` as the sample-log tree of contract C under ``out_dir``.
+    """Write ``fleet`` as the sample-log tree under ``out_dir``.
 
     Parameters
     ----------
@@ -221,7 +221,7 @@ def write_sample_logs(
     out_dir
         Target folder (created; files of the same names are overwritten).
     foreign_site
-        Site slug whose exposures are written in the foreign layout (contract B).
+        Site slug whose exposures are written in the foreign layout (harrowgate profile).
     formats
         Exposure file formats of our own layout: any of ``"csv.gz"``, ``"csv"``, ``"parquet"``.
     bad_rows

@@ -236,7 +236,7 @@ def month_edges(
 def health_filament_cdf(
     rul_cdf: pd.DataFrame, tube_ids, days: np.ndarray
 ) -> np.ndarray:
-    """Per-tube filament end-of-life CDF at ``days`` from the health forecast (contract E).
+    """Per-tube filament end-of-life CDF at ``days`` from the health forecast.
 
     Returns an array (len(tube_ids), len(days)); rows are NaN for tubes without a forecast.
     Focal spots combined as 1 - prod(1 - p); linear interpolation in days from (0, 0); flat

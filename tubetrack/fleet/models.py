@@ -2,7 +2,7 @@
 
 :func:`fit_fleet_models` fits the all-cause Weibull and the cause-specific (filament / other)
 Weibulls on one clock; :func:`read_health_rul_cdf` reads the health worker's per-tube
-end-of-life CDF (contract E) when it exists; :func:`tube_risk` gives each tube in service its
+end-of-life CDF when it exists; :func:`tube_risk` gives each tube in service its
 replacement probability within a horizon.
 """
 

@@ -33,7 +33,7 @@ from tubetrack.health.threshold import Threshold, failed_focal_losses, learn_thr
 if TYPE_CHECKING:  # pragma: no cover
     import duckdb
 
-#: Column order of ``result_health`` (contract E), extra diagnostic columns follow.
+#: Column order of ``result_health``, extra diagnostic columns follow.
 SUMMARY_COLUMNS = (
     "tube_id", "system_id", "site", "focal_spot", "health_level", "health_rank", "reason",
     "diameter_loss_pct", "diameter_loss_pct_se", "rul_days_p10", "rul_days_p50", "rul_days_p90",
