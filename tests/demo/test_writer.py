@@ -55,7 +55,7 @@ def _foreign_to_utc(frame: pd.DataFrame) -> list[datetime | None]:
     return out
 
 
-def test_tree_follows_contract_c(small_logs, small_fleet):
+def test_tree_follows_the_sample_logs_layout(small_logs, small_fleet):
     out, paths = small_logs
     names = {str(p.relative_to(out)) for p in paths}
     assert {"inventory/systems.csv", "inventory/tubes.csv", "truth.csv", "README.md"} <= names

@@ -61,7 +61,7 @@ _NAMES = (
 
 @functools.cache
 def _ph(name: str) -> Any:
-    """A contract-D name from :mod:`tubetrack.physics` (or its submodules while the package's
+    """A physics-API name from :mod:`tubetrack.physics` (or its submodules while the package's
     ``__init__`` does not re-export it yet)."""
     import importlib
 

@@ -395,7 +395,7 @@ def _insert_foreign_bad(part: pd.DataFrame, b: BadRow, rng: np.random.Generator)
 
 
 def _write_dicom(fleet: DemoFleet, out: Path, gen: pd.DataFrame, written: list[Path]) -> str:
-    """DICOM workload of the sites that export no generator logs (contract F/G)."""
+    """DICOM workload of the sites that export no generator logs."""
     dicom_sites = sorted({str(s) for s, ok in zip(gen["site"], gen["gen_site_exports_logs"], strict=True) if not ok})
     if not dicom_sites:
         return "no DICOM-only site in this fleet"

@@ -2,7 +2,7 @@
 
 Rule for each tube in service (documented in docs/fleet.md):
 
-* **With a health forecast** (table ``result_health_rul_cdf``, contract E): the tube's filament
+* **With a health forecast** (table ``result_health_rul_cdf``): the tube's filament
   end-of-life CDF P_fil(t) comes from its own health forecast. Both focal spots' filaments are
   needed, so P_fil(t) = 1 - prod_spots (1 - p_spot(t)) (spots treated as independent, the
   cautious choice). Non-filament causes come from the fleet Weibull fitted to *non-filament*
@@ -427,7 +427,7 @@ def _replacement_forecast(
         Weibull of non-filament causes (used with health forecasts). ``None``: tubes with a
         health forecast still use the all-cause fleet model and a note says so.
     health_rul_cdf
-        Contract-E table ``result_health_rul_cdf`` or ``None``.
+        Health table ``result_health_rul_cdf`` or ``None``.
     clock
         Clock of the fits: ``days`` or a workload clock (future workload at the recent rate).
     renewal

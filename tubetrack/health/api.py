@@ -52,7 +52,7 @@ EXTRA_COLUMNS = (
 
 @dataclass(frozen=True)
 class HealthResult:
-    """Tube-health results at one analysis date (frames of contract E)."""
+    """Tube-health results at one analysis date."""
 
     summary: pd.DataFrame
     rul_cdf: pd.DataFrame

@@ -77,7 +77,7 @@ class PowerLawPhysics:
 
     Used in tests (expected values then follow by hand) and as a documented fallback when the
     physics module is unavailable. I/I0 = (d/d0)^1.5 is the leading-order relation quoted in
-    contract D (radiation-cooled wire at a fixed temperature: I^2 R = P_rad, R ~ 1/d^2,
+    physics API (radiation-cooled wire at a fixed temperature: I^2 R = P_rad, R ~ 1/d^2,
     P_rad ~ d, hence I ~ d^1.5).
     """
 
