@@ -9,7 +9,8 @@ Two memory figures are recorded for every step:
 ``tree_rss_mib``
     The largest *sum* of resident sets over the step's whole process tree, sampled from
     ``/proc`` every 50 ms. A process pool or a Spark JVM shows up here, not in the first figure.
-    Sampling can miss a short spike, so this is a lower bound of the true peak.
+    Sampling can miss a short spike; and pages a forked worker still shares with its parent are
+    counted once per process, which overstates. Read it as an indication, not an exact total.
 
 Wall time is measured around the child with :func:`time.perf_counter`; CPU time (user + system,
 the step's processes and the children they waited for) comes from ``/usr/bin/time -v``. On a
