@@ -118,10 +118,10 @@ def test_readers_and_analyses_wait_or_fail_cleanly_during_ingest(tmp_path):
             waited += WAIT_MESSAGE in stderr
         else:
             assert proc.returncode == 1, (name, proc.returncode, stderr[-2000:])
-            assert stderr.startswith(f"Error: store {db} is in use by another tubetrack process"), (
-                name,
-                stderr[-2000:],
-            )
+            # the wait message first, then one clear error line
+            assert stderr.strip().splitlines()[-1].startswith(
+                f"Error: store {db} is in use by another tubetrack process"
+            ), (name, stderr[-2000:])
     # at least the command that ran into the ingest said it was waiting (or failed clearly)
     assert waited or any(p.returncode == 1 for p, _, _ in results.values())
     if results["report"][0].returncode == 0:
@@ -132,3 +132,61 @@ def test_readers_and_analyses_wait_or_fail_cleanly_during_ingest(tmp_path):
     # and the store still takes writes: a re-run of everything works
     r = run_cli("status", "--db", str(db), "-f", "json")
     assert r.returncode == 0 and "Traceback" not in r.stderr
+
+
+HOLD_LOCK = (
+    "import sys, time, duckdb\n"
+    "con = duckdb.connect(sys.argv[1])\n"
+    "print('locked', flush=True)\n"
+    "time.sleep(float(sys.argv[2]))\n"
+)
+
+
+def test_store_held_past_the_wait_gives_a_clear_error(tmp_path):
+    """Another process keeps the store's write lock for longer than the 30 s the commands wait:
+    each one prints the waiting message, then one `Error:` line, exit code 1, no traceback, and
+    the store is unharmed."""
+    import sys
+
+    logs = tmp_path / "logs"
+    write_hostile_logs(logs)
+    db = tmp_path / "store.duckdb"
+    r = run_cli("ingest", "--db", str(db), "--quiet", str(logs))
+    assert r.returncode == 0, r.stderr
+    before = _reconciles(db)
+    holder = subprocess.Popen(
+        [sys.executable, "-c", HOLD_LOCK, str(db), "75"],
+        stdout=subprocess.PIPE,
+        text=True,
+        env=child_env(),
+    )
+    try:
+        assert holder.stdout.readline().strip() == "locked"
+        argvs = {
+            "status": tubetrack_cmd("status", "--db", str(db), "-f", "json"),
+            "tubes": tubetrack_cmd("tubes", "--db", str(db), "--quiet", "-f", "json"),
+            "report": tubetrack_cmd(
+                "report", "--db", str(db), "--quiet", "--no-images", "--out", str(tmp_path / "r")
+            ),
+            "ingest": tubetrack_cmd("ingest", "--db", str(db), "--quiet", str(logs)),
+        }
+        procs = {
+            n: subprocess.Popen(a, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                                env=child_env())
+            for n, a in argvs.items()
+        }
+        done = {n: (p, *p.communicate(timeout=300)) for n, p in procs.items()}
+        assert holder.poll() is None, "the lock holder ended early; the test proves nothing"
+    finally:
+        holder.kill()
+        holder.wait(timeout=30)
+    for name, (proc, stdout, stderr) in done.items():
+        assert "Traceback" not in stderr, (name, stderr[-3000:])
+        assert proc.returncode == 1, (name, proc.returncode, stderr[-2000:])
+        assert WAIT_MESSAGE in stderr, name
+        last = stderr.strip().splitlines()[-1]
+        assert last.startswith(f"Error: store {db} is in use by another tubetrack process"), (
+            name, last,
+        )
+        assert stdout.strip() in ("", "[]"), (name, stdout[:500])
+    assert _reconciles(db) == before
