@@ -1,4 +1,4 @@
-"""Fixtures of the report tests: synthetic result frames shaped like contract E, chromium."""
+"""Fixtures of the report tests: synthetic result frames shaped like the health and fleet result tables, chromium."""
 
 from __future__ import annotations
 

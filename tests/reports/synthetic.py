@@ -1,4 +1,4 @@
-"""Synthetic result frames shaped like the health and fleet result tables (contract E).
+"""Synthetic result frames shaped like the health and fleet result tables.
 
 Invented numbers for exercising charts and reports only: never used as check values.
 """

@@ -1,6 +1,6 @@
 """Charts of tube health results: station drift, diameter loss, fault rates, fleet overview.
 
-Inputs are the health result tables (``result_health*``, see docs/health.md and the contract in
+Inputs are the health result tables (``result_health*``, see docs/health.md and the column list in
 docs/reports.md); every function aggregates before it draws, so a chart stays light whatever the
 history length. Times are UTC: temporal scales use ``utc`` and tooltips show UTC dates.
 """
