@@ -5,6 +5,7 @@ from __future__ import annotations
 import subprocess
 import sys
 
+import duckdb
 import pandas as pd
 import pytest
 
@@ -102,3 +103,18 @@ def test_second_writer_waits_then_fails_clearly(db_path):
     finally:
         holder.kill()
         holder.wait()
+
+
+def test_result_set_is_replaced_as_one(mem_store):
+    store.write_result_set(mem_store, {"result_a": pd.DataFrame({"x": [1]})}, kind="t")
+    # a view squatting on the second name makes its CREATE OR REPLACE TABLE fail mid-set
+    mem_store.execute("CREATE VIEW result_b AS SELECT 1 AS y")
+    with pytest.raises(duckdb.Error):
+        store.write_result_set(
+            mem_store,
+            {"result_a": pd.DataFrame({"x": [2]}), "result_b": pd.DataFrame({"y": [2]})},
+            kind="t",
+        )
+    # the first table of the failed set was rolled back with the rest
+    assert store.read_results(mem_store, "result_a")["x"].tolist() == [1]
+    assert mem_store.execute("SELECT count(*) FROM analysis_runs").fetchall()[0][0] == 1

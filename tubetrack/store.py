@@ -17,7 +17,7 @@ import os
 import re
 import sys
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -400,40 +400,67 @@ def write_results(
     params: dict[str, Any] | None = None,
     started_at: datetime | None = None,
 ) -> str:
-    """Replace results table ``table`` with ``frame`` atomically and register the run.
+    """Replace one results table atomically; see :func:`write_result_set`."""
+    return write_result_set(
+        con,
+        {table: frame},
+        kind=kind,
+        as_of=as_of,
+        params=params,
+        started_at=started_at,
+    )[table]
 
-    The old table stays visible to readers until the new one is committed: an interrupted
-    analysis leaves the previous results, never a half-written table. Returns the run id.
+
+def write_result_set(
+    con: duckdb.DuckDBPyConnection,
+    frames: Mapping[str, pd.DataFrame],
+    *,
+    kind: str,
+    as_of: datetime | None = None,
+    params: dict[str, Any] | None = None,
+    started_at: datetime | None = None,
+) -> dict[str, str]:
+    """Replace the results tables ``frames`` (name -> frame) in ONE transaction.
+
+    An analysis writes its tables as a set: readers see either every old table or every new
+    one, never a mix, and a run interrupted at any point (Ctrl-C, SIGKILL) leaves the previous
+    set. Each table gets a row in ``analysis_runs``. Returns ``{table: run_id}``.
     """
-    if not _IDENT.match(table) or not table.startswith("result_"):
-        raise ValueError(
-            f"results table name must look like result_<name>, got {table!r}"
-        )
+    for table in frames:
+        if not _IDENT.match(table) or not table.startswith("result_"):
+            raise ValueError(
+                f"results table name must look like result_<name>, got {table!r}"
+            )
     started = started_at or utcnow()
-    run_id = f"{kind}-{started:%Y%m%dT%H%M%S%f}"
-    con.register("_tt_results_frame", frame)
+    run_ids: dict[str, str] = {}
+    registered: list[str] = []
     try:
         with transaction(con):
-            con.execute(
-                f"CREATE OR REPLACE TABLE {table} AS SELECT * FROM _tt_results_frame"
-            )
-            con.execute(
-                "INSERT INTO analysis_runs VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                [
-                    run_id,
-                    kind,
-                    table,
-                    as_of,
-                    started,
-                    utcnow(),
-                    json.dumps(params or {}, default=str, sort_keys=True),
-                    __version__,
-                    len(frame),
-                ],
-            )
+            for i, (table, frame) in enumerate(frames.items()):
+                view = f"_tt_results_frame_{i}"
+                con.register(view, frame)
+                registered.append(view)
+                con.execute(f"CREATE OR REPLACE TABLE {table} AS SELECT * FROM {view}")
+                run_id = f"{kind}-{started:%Y%m%dT%H%M%S%f}-{table}"
+                con.execute(
+                    "INSERT INTO analysis_runs VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                    [
+                        run_id,
+                        kind,
+                        table,
+                        as_of,
+                        started,
+                        utcnow(),
+                        json.dumps(params or {}, default=str, sort_keys=True),
+                        __version__,
+                        len(frame),
+                    ],
+                )
+                run_ids[table] = run_id
     finally:
-        con.unregister("_tt_results_frame")
-    return run_id
+        for view in registered:
+            con.unregister(view)
+    return run_ids
 
 
 def read_results(con: duckdb.DuckDBPyConnection, table: str) -> pd.DataFrame:

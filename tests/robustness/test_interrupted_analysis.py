@@ -142,15 +142,24 @@ KILL_AFTER_WRITES = textwrap.dedent(
     """
     import os, signal, sys
     from tubetrack import store
-    real = store.write_results
-    calls = []
-    def write_then_die(*args, **kwargs):
-        run_id = real(*args, **kwargs)
-        calls.append(run_id)
-        if len(calls) == int(sys.argv[1]):
-            os.kill(os.getpid(), signal.SIGKILL)
-        return run_id
-    store.write_results = write_then_die
+    # Kill point: inside store.write_result_set's transaction, right after the N-th result
+    # table of the set has been created (store.utcnow is called once for the run's start and
+    # once per table as it is registered in analysis_runs), before the commit.
+    real_set, real_now = store.write_result_set, store.utcnow
+    state = {"in_set": False, "calls": 0}
+    def now():
+        if state["in_set"]:
+            state["calls"] += 1
+            if state["calls"] == int(sys.argv[1]) + 1:
+                os.kill(os.getpid(), signal.SIGKILL)
+        return real_now()
+    def write_set(*args, **kwargs):
+        state["in_set"] = True
+        try:
+            return real_set(*args, **kwargs)
+        finally:
+            state["in_set"] = False
+    store.utcnow, store.write_result_set = now, write_set
     from tubetrack.cli import app
     app(sys.argv[2:])
     """
@@ -169,22 +178,16 @@ def _kill_after_writes(db: Path, n_writes: int) -> int:
 
 
 def test_sigkill_between_result_tables_each_table_is_whole(analysed_store, tmp_path):
-    """A kill that lands after the 2nd of the result_health* writes (deterministic kill point):
-    each table on its own is old or new, never partial."""
+    """A kill that lands after the 2nd result_health* table of the set was written, before the
+    commit (deterministic kill point): every table is whole, and all are still the old run."""
     base, before, reference = analysed_store
     db = tmp_path / "killed.duckdb"
     shutil.copy(base, db)
     assert _kill_after_writes(db, 2) == -signal.SIGKILL
     state = _check_after_kill(db, before, reference)
-    assert list(state.values()).count("new") == 2
+    assert set(state.values()) == {"old"}, state
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="tubetrack/cli/health_cmd.py::_analyse writes the result_health* tables with one "
-    "store.write_results call (one transaction) per table, so a kill between two calls leaves "
-    "tables from two different runs (new result_health beside old result_health_drift ...)",
-)
 def test_sigkill_between_result_tables_keeps_one_consistent_set(analysed_store, tmp_path):
     """The result_health* tables are read together (tube page, report): after a kill they must
     all come from the same run."""
@@ -210,12 +213,6 @@ def _latest_as_of(db: Path, prefix: str) -> dict[str, object]:
     return dict(rows)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="tubetrack/cli/fleet_cmd.py (forecast) writes result_fleet_forecast and "
-    "result_fleet_forecast_tubes with one store.write_results call (one transaction) each, so "
-    "a kill between them leaves the two tables from different runs",
-)
 def test_sigkill_between_fleet_forecast_tables_keeps_one_consistent_set(
     analysed_store, tmp_path
 ):

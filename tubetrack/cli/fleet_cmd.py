@@ -259,42 +259,17 @@ def survival_cmd(
                 "interval": interval.value,
                 "confidence": confidence,
             }
-            store.write_results(
-                con,
-                "result_fleet_survival",
-                summary,
-                kind="fleet_survival",
-                as_of=as_of_ts,
-                params=params,
-            )
-            store.write_results(
-                con,
-                "result_fleet_km",
-                km,
-                kind="fleet_survival",
-                as_of=as_of_ts,
-                params=params,
-            )
+            tables = {"result_fleet_survival": summary, "result_fleet_km": km}
             if len(incidence):
                 incidence["clock"] = clock.value
-                store.write_results(
-                    con,
-                    "result_fleet_incidence",
-                    incidence,
-                    kind="fleet_survival",
-                    as_of=as_of_ts,
-                    params=params,
-                )
+                tables["result_fleet_incidence"] = incidence
             if len(curve):
                 curve["clock"] = clock.value
-                store.write_results(
-                    con,
-                    "result_fleet_survival_curve",
-                    curve,
-                    kind="fleet_survival",
-                    as_of=as_of_ts,
-                    params=params,
-                )
+                tables["result_fleet_survival_curve"] = curve
+            # one transaction: readers never see tables of two different runs
+            store.write_result_set(
+                con, tables, kind="fleet_survival", as_of=as_of_ts, params=params
+            )
     finally:
         con.close()
     view = {"summary": summary, "km": km, "incidence": incidence, "curve": curve}[
@@ -488,40 +463,18 @@ def forecast_cmd(
                 "eta": models.all_cause.eta,
                 "beta": models.all_cause.beta,
             }
-            store.write_results(
-                con,
-                "result_fleet_forecast",
-                fc.summary,
-                kind="fleet_forecast",
-                as_of=as_of_ts,
-                params=params,
-            )
-            store.write_results(
-                con,
-                "result_fleet_forecast_tubes",
-                fc.tubes,
-                kind="fleet_forecast",
-                as_of=as_of_ts,
-                params=params,
-            )
+            tables = {
+                "result_fleet_forecast": fc.summary,
+                "result_fleet_forecast_tubes": fc.tubes,
+            }
             if by is not None:
-                store.write_results(
-                    con,
-                    "result_fleet_forecast_groups",
-                    summary,
-                    kind="fleet_forecast",
-                    as_of=as_of_ts,
-                    params=params,
-                )
+                tables["result_fleet_forecast_groups"] = summary
             if budget is not None:
-                store.write_results(
-                    con,
-                    "result_fleet_budget",
-                    budget.summary,
-                    kind="fleet_forecast",
-                    as_of=as_of_ts,
-                    params=params,
-                )
+                tables["result_fleet_budget"] = budget.summary
+            # one transaction: the forecast and its per-tube rows always belong together
+            store.write_result_set(
+                con, tables, kind="fleet_forecast", as_of=as_of_ts, params=params
+            )
     finally:
         con.close()
     if show == "tubes":
@@ -822,18 +775,9 @@ def uptime_cmd(
                 "confidence": confidence,
                 "start": begin,
             }
-            store.write_results(
+            store.write_result_set(
                 con,
-                "result_fleet_uptime",
-                res.periods,
-                kind="fleet_uptime",
-                as_of=end,
-                params=params,
-            )
-            store.write_results(
-                con,
-                "result_fleet_mtbf",
-                res.summary,
+                {"result_fleet_uptime": res.periods, "result_fleet_mtbf": res.summary},
                 kind="fleet_uptime",
                 as_of=end,
                 params=params,

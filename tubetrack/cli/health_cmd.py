@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 import sys
-from datetime import timedelta
 from typing import Annotated, Any
 
 import typer
@@ -65,17 +64,10 @@ def _analyse(db: Any, as_of: str | None, quiet: bool):
     params = HealthParams()
     stderr("analysing tubes ...", quiet)
     result = analyse_fleet(con, as_of=cut, params=params)
-    started = store.utcnow()
-    for i, (table, frame) in enumerate(result.tables().items()):
-        store.write_results(
-            con,
-            table,
-            frame,
-            kind="health",
-            as_of=result.as_of,
-            params=result.params,
-            started_at=started + timedelta(microseconds=i),
-        )
+    # one transaction for the whole set: an interrupted run leaves the previous results
+    store.write_result_set(
+        con, result.tables(), kind="health", as_of=result.as_of, params=result.params
+    )
     return con, result
 
 
@@ -295,21 +287,12 @@ def backtest_command(
     stderr(f"backtest: cut-offs every {every_days} days ...", quiet)
     res = run_backtest(con, every_days=every_days, warmup_days=warmup_days)
     params = {"every_days": every_days, "warmup_days": warmup_days}
-    store.write_results(
+    store.write_result_set(
         con,
-        "result_backtest",
-        res.summary,
+        {"result_backtest": res.summary, "result_backtest_cases": res.cases},
         kind="backtest",
         params=params,
         started_at=started,
-    )
-    store.write_results(
-        con,
-        "result_backtest_cases",
-        res.cases,
-        kind="backtest",
-        params=params,
-        started_at=started + timedelta(microseconds=1),
     )
     con.close()
     emit(
