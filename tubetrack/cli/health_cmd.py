@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import sys
+from pathlib import Path
 from typing import Annotated, Any
 
 import typer
@@ -77,13 +78,76 @@ def _json_frame(frame: Any) -> list[dict[str, Any]]:
     return records(frame)
 
 
+EngineOption = Annotated[
+    str,
+    typer.Option(
+        "--engine",
+        help="Where the analysis runs: local (DuckDB SQL + a process pool on this machine) or "
+        "spark (Spark SQL + applyInPandas over a Parquet lake; needs tubetrack[spark] and "
+        "--lake).",
+    ),
+]
+LakeOption = Annotated[
+    Path | None,
+    typer.Option(
+        "--lake",
+        help="Read a Parquet lake written by `tubetrack export-lake` instead of the store's "
+        "tables. Results are still stored in --db for `tubetrack report`.",
+        show_default=False,
+    ),
+]
+MasterOption = Annotated[
+    str | None,
+    typer.Option(
+        "--master",
+        help="Spark master URL (local[4], spark://host:7077, yarn, ...). Default: "
+        "SPARK_REMOTE or the spark-submit configuration, else local[2].",
+        show_default=False,
+    ),
+]
+
+
+def _analyse_engine(
+    db: Any,
+    as_of: str | None,
+    quiet: bool,
+    engine: str,
+    lake: Path | None,
+    master: str | None,
+):
+    """Run the health analysis on the chosen engine and store its result set in ``db``."""
+    from tubetrack import store
+    from tubetrack.engines import run_health
+    from tubetrack.health.params import HealthParams
+
+    stderr(f"analysing tubes on the {engine} engine ...", quiet)
+    result = run_health(
+        engine,
+        lake=lake,
+        as_of=parse_as_of(as_of),
+        params=HealthParams(),
+        master=master,
+    )
+    con = store.connect(db)
+    store.write_result_set(
+        con, result.tables(), kind="health", as_of=result.as_of, params=result.params
+    )
+    return con, result
+
+
 def tubes_command(
     db: DbOption = None,
     fmt: FormatOption = OutputFormat.table,
     as_of: AsOfOption = None,
     quiet: QuietOption = False,
+    engine: EngineOption = "local",
+    lake: LakeOption = None,
+    master: MasterOption = None,
 ) -> None:
-    con, result = _analyse(db, as_of, quiet)
+    if engine == "local" and lake is None and master is None:
+        con, result = _analyse(db, as_of, quiet)
+    else:
+        con, result = _analyse_engine(db, as_of, quiet, engine, lake, master)
     con.close()
     from tubetrack.cli.common import emit
 
