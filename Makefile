@@ -32,11 +32,14 @@ demo: $(STAMP)
 	$(TT) ingest --quiet sample_logs
 	$(TT) status
 	$(TT) tubes
-	$(TT) fleet forecast
+	$(TT) backtest -q
+	$(TT) fleet survival -q > /dev/null
+	$(TT) fleet forecast --show budget
+	$(TT) fleet spares -q > /dev/null
+	$(TT) fleet uptime -q > /dev/null
 	$(TT) fleet visits
-	$(TT) fleet uptime --period quarter > /dev/null
 	$(TT) report --out reports
-	@echo "Reports written: $$(pwd)/reports/fleet.html (open it in a browser; works offline)"
+	@echo "Reports: $$(pwd)/reports/fleet.html (per tube: reports/tubes/, images: reports/img/); they open offline"
 
 test: $(TEST_STAMP)
 	@$(BIN)/python -m pytest -q; rc=$$?; \
@@ -52,4 +55,4 @@ lint: $(TEST_STAMP)
 	$(BIN)/ruff check tubetrack tests bench
 
 clean:
-	rm -rf $(DB) $(DB).wal reports/*.html reports/tubes reports/img .pytest_cache
+	rm -rf $(DB) $(DB).wal reports/*.html reports/tubes reports/img reports/assets .pytest_cache

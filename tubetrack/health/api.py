@@ -42,7 +42,7 @@ SUMMARY_COLUMNS = (
     "analysed_at_utc", "code_version",
 )
 EXTRA_COLUMNS = (
-    "threshold_pct", "threshold_source", "wear_rate_pct_per_day", "wear_factor_k", "wear_factor_k_se", "history_days",
+    "threshold_pct", "threshold_sd_pct", "threshold_source", "wear_rate_pct_per_day", "wear_factor_k", "wear_factor_k_se", "history_days",
     "days_with_current", "pre_log_gap_days", "current_drop_pct", "current_drop_station_ma",
     "arc_rate_recent_per_1000", "arc_trend_p", "ma_miss_fraction", "resistance_change_pct",
     "unforeseeable", "rul_days_p50_wiener", "p_end_of_life_180d_wiener", "kv_model",
@@ -226,13 +226,15 @@ def analyse_frames(
         columns=[c for c in (*SUMMARY_COLUMNS, *EXTRA_COLUMNS) if c not in ("health_level", "health_rank",
                                                                           "reason", "signals", "as_of",
                                                                           "analysed_at_utc", "code_version",
-                                                                          "threshold_pct", "threshold_source")]
+                                                                          "threshold_pct", "threshold_sd_pct",
+                                                                          "threshold_source")]
         + ["signature_level", "signature_reasons", "signals_list"])
     summary = assign_levels(summary, thr.mean, p.min_history_days, p.max_rul_days)
     summary["as_of"] = cut
     summary["analysed_at_utc"] = pd.Timestamp(analysed_at) if analysed_at else pd.Timestamp.now("UTC").tz_localize(None)
     summary["code_version"] = __version__
     summary["threshold_pct"] = 100.0 * thr.mean
+    summary["threshold_sd_pct"] = 100.0 * thr.sd  # spread of the failure point [% of diameter]
     summary["threshold_source"] = thr.source
     cols = [c for c in (*SUMMARY_COLUMNS, *EXTRA_COLUMNS) if c in summary.columns]
     summary = summary[cols].sort_values(
