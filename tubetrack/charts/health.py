@@ -299,22 +299,8 @@ def drift_layers(title: str = "") -> alt.VConcatChart:
             ],
         )
     )
-    thr_band = (
-        alt.Chart(named("drift_threshold"))
-        .mark_rect(opacity=0.12, color=THRESHOLD_COLOUR)
-        .encode(y="threshold_lo_pct:Q", y2="threshold_hi_pct:Q")
-    )
-    thr = (
-        alt.Chart(named("drift_threshold"))
-        .mark_rule(color=THRESHOLD_COLOUR, strokeDash=[8, 4], strokeWidth=2)
-        .encode(
-            y="threshold_pct:Q",
-            tooltip=[
-                alt.Tooltip("threshold_pct:Q", title="end-of-life threshold [%]", format=".2f"),
-                alt.Tooltip("threshold_lo_pct:Q", title="threshold, low [%]", format=".2f"),
-                alt.Tooltip("threshold_hi_pct:Q", title="threshold, high [%]", format=".2f"),
-            ],
-        )
+    thr_band, thr = _threshold_layers(
+        "drift_threshold", "end-of-life threshold [%]", "threshold, low [%]", "threshold, high [%]"
     )
     bottom = alt.layer(thr_band, band, fan, history, median, thr, changes).properties(
         title="Estimated diameter loss, projection P10-P90 and end-of-life threshold",
@@ -325,6 +311,33 @@ def drift_layers(title: str = "") -> alt.VConcatChart:
     if title:
         chart = chart.properties(title=title)
     return chart
+
+
+def _threshold_layers(
+    dataset: str, title: str, lo_title: str, hi_title: str
+) -> tuple[alt.Chart, alt.Chart]:
+    """End-of-life threshold as a dashed rule over its spread band, from a named dataset with
+    ``threshold_pct``, ``threshold_lo_pct`` and ``threshold_hi_pct`` [% diameter loss]."""
+    import altair as alt
+
+    band = (
+        alt.Chart(named(dataset))
+        .mark_rect(opacity=0.12, color=THRESHOLD_COLOUR)
+        .encode(y="threshold_lo_pct:Q", y2="threshold_hi_pct:Q")
+    )
+    rule = (
+        alt.Chart(named(dataset))
+        .mark_rule(color=THRESHOLD_COLOUR, strokeDash=[8, 4], strokeWidth=2)
+        .encode(
+            y="threshold_pct:Q",
+            tooltip=[
+                alt.Tooltip("threshold_pct:Q", title=title, format=".2f"),
+                alt.Tooltip("threshold_lo_pct:Q", title=lo_title, format=".2f"),
+                alt.Tooltip("threshold_hi_pct:Q", title=hi_title, format=".2f"),
+            ],
+        )
+    )
+    return band, rule
 
 
 def drift_chart(
@@ -441,22 +454,11 @@ def diameter_chart(
             ],
         )
     )
-    thr_band = (
-        alt.Chart(named("diameter_threshold"))
-        .mark_rect(opacity=0.12, color=THRESHOLD_COLOUR)
-        .encode(y="threshold_lo_pct:Q", y2="threshold_hi_pct:Q")
-    )
-    rule = (
-        alt.Chart(named("diameter_threshold"))
-        .mark_rule(color=THRESHOLD_COLOUR, strokeDash=[8, 4], strokeWidth=2)
-        .encode(
-            y="threshold_pct:Q",
-            tooltip=[
-                alt.Tooltip("threshold_pct:Q", title="learned end-of-life threshold [%]", format=".2f"),
-                alt.Tooltip("threshold_lo_pct:Q", title="spread, low [%]", format=".2f"),
-                alt.Tooltip("threshold_hi_pct:Q", title="spread, high [%]", format=".2f"),
-            ],
-        )
+    thr_band, rule = _threshold_layers(
+        "diameter_threshold",
+        "learned end-of-life threshold [%]",
+        "spread, low [%]",
+        "spread, high [%]",
     )
     return alt.layer(thr_band, band, line, rule).properties(
         title="Estimated diameter loss of the tubes nearest end of life, against the fleet's threshold",
