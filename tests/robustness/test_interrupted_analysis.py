@@ -142,24 +142,39 @@ KILL_AFTER_WRITES = textwrap.dedent(
     """
     import os, signal, sys
     from tubetrack import store
-    # Kill point: inside store.write_result_set's transaction, right after the N-th result
-    # table of the set has been created (store.utcnow is called once for the run's start and
-    # once per table as it is registered in analysis_runs), before the commit.
-    real_set, real_now = store.write_result_set, store.utcnow
-    state = {"in_set": False, "calls": 0}
-    def now():
-        if state["in_set"]:
-            state["calls"] += 1
-            if state["calls"] == int(sys.argv[1]) + 1:
+
+    # SIGKILL this process once argv[1] result tables have been written (CREATE OR REPLACE
+    # done) inside the results transaction: the connection handed to store.write_result_set
+    # is wrapped, and the kill lands when the next table's frame is registered.
+    limit = int(sys.argv[1])
+    created = [0]
+    real = store.write_result_set
+
+    class KillingConnection:
+        def __init__(self, con):
+            self._con = con
+
+        def __getattr__(self, name):
+            return getattr(self._con, name)
+
+        def register(self, *args, **kwargs):
+            if created[0] >= limit:
                 os.kill(os.getpid(), signal.SIGKILL)
-        return real_now()
-    def write_set(*args, **kwargs):
-        state["in_set"] = True
-        try:
-            return real_set(*args, **kwargs)
-        finally:
-            state["in_set"] = False
-    store.utcnow, store.write_result_set = now, write_set
+            return self._con.register(*args, **kwargs)
+
+        def execute(self, sql, *args, **kwargs):
+            out = self._con.execute(sql, *args, **kwargs)
+            if str(sql).startswith("CREATE OR REPLACE TABLE result_"):
+                created[0] += 1
+            return out
+
+    def write_then_die(con, *args, **kwargs):
+        run_ids = real(KillingConnection(con), *args, **kwargs)
+        if created[0] >= limit:
+            os.kill(os.getpid(), signal.SIGKILL)
+        return run_ids
+
+    store.write_result_set = write_then_die
     from tubetrack.cli import app
     app(sys.argv[2:])
     """
@@ -177,26 +192,16 @@ def _kill_after_writes(db: Path, n_writes: int) -> int:
     return proc.returncode
 
 
-def test_sigkill_between_result_tables_each_table_is_whole(analysed_store, tmp_path):
-    """A kill that lands after the 2nd result_health* table of the set was written, before the
-    commit (deterministic kill point): every table is whole, and all are still the old run."""
+def test_sigkill_between_result_tables_keeps_the_previous_set(analysed_store, tmp_path):
+    """A kill that lands after 2 of the 6 result_health* tables were replaced inside the results
+    transaction (a deterministic kill point): every table is still the previous run's, and all of
+    them come from one run (they are read together by the tube pages and the report)."""
     base, before, reference = analysed_store
     db = tmp_path / "killed.duckdb"
     shutil.copy(base, db)
     assert _kill_after_writes(db, 2) == -signal.SIGKILL
     state = _check_after_kill(db, before, reference)
     assert set(state.values()) == {"old"}, state
-
-
-def test_sigkill_between_result_tables_keeps_one_consistent_set(analysed_store, tmp_path):
-    """The result_health* tables are read together (tube page, report): after a kill they must
-    all come from the same run."""
-    base, before, reference = analysed_store
-    db = tmp_path / "killed.duckdb"
-    shutil.copy(base, db)
-    assert _kill_after_writes(db, 2) == -signal.SIGKILL
-    state = _check_after_kill(db, before, reference)
-    assert len(set(state.values())) == 1, state
     assert len(set(_latest_runs(db).values())) == 1
 
 
@@ -213,7 +218,7 @@ def _latest_as_of(db: Path, prefix: str) -> dict[str, object]:
     return dict(rows)
 
 
-def test_sigkill_between_fleet_forecast_tables_keeps_one_consistent_set(
+def test_sigkill_between_fleet_forecast_tables_keeps_the_previous_set(
     analysed_store, tmp_path
 ):
     base, _, _ = analysed_store
@@ -229,8 +234,7 @@ def test_sigkill_between_fleet_forecast_tables_keeps_one_consistent_set(
     assert rc == -signal.SIGKILL
     store.connect(db).close()  # the store opens
     after = _latest_as_of(db, "result_fleet_forecast")
-    assert set(after) == set(earlier)
-    assert len(set(after.values())) == 1, after
+    assert after == earlier  # every table still from the earlier (--as-of) run
 
 
 def _kill_after_writes_argv(db: Path, n_writes: int, argv: list[str]) -> int:
