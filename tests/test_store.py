@@ -118,3 +118,24 @@ def test_result_set_is_replaced_as_one(mem_store):
     # the first table of the failed set was rolled back with the rest
     assert store.read_results(mem_store, "result_a")["x"].tolist() == [1]
     assert mem_store.execute("SELECT count(*) FROM analysis_runs").fetchall()[0][0] == 1
+
+
+def test_busy_wait_comes_from_the_environment(db_path, monkeypatch):
+    store.connect(db_path).close()
+    holder = subprocess.Popen(
+        [sys.executable, "-c",
+         "import sys,time,duckdb; c=duckdb.connect(sys.argv[1]); print('held', flush=True); "
+         "time.sleep(30)", str(db_path)],
+        stdout=subprocess.PIPE, text=True,
+    )
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        monkeypatch.setenv("TUBETRACK_WAIT_S", "0.2")
+        with pytest.raises(StoreBusyError, match=r"waited 0 s"):
+            store.connect(db_path, on_wait=lambda m: None)
+        monkeypatch.setenv("TUBETRACK_WAIT_S", "soon")
+        with pytest.raises(StoreError, match="TUBETRACK_WAIT_S is 'soon'"):
+            store.connect(db_path)
+    finally:
+        holder.kill()
+        holder.wait()

@@ -33,6 +33,7 @@ if TYPE_CHECKING:  # pragma: no cover
 
 DEFAULT_DB_NAME = "tubetrack.duckdb"
 ENV_DB = "TUBETRACK_DB"
+ENV_WAIT = "TUBETRACK_WAIT_S"
 
 #: Canonical tables, in dependency order. Column comments give meaning; units are in the names.
 SCHEMA_V1 = """
@@ -236,6 +237,22 @@ def default_db_path() -> Path:
     return Path(os.environ.get(ENV_DB) or DEFAULT_DB_NAME)
 
 
+def _env_wait_s() -> float:
+    """``$TUBETRACK_WAIT_S`` [s], the busy-store wait of every command; 30 s when unset."""
+    raw = os.environ.get(ENV_WAIT, "").strip()
+    if not raw:
+        return 30.0
+    try:
+        value = float(raw)
+    except ValueError:
+        raise StoreError(
+            f"{ENV_WAIT} is {raw!r}, not a number of seconds. Unset it or give e.g. 10."
+        ) from None
+    if value < 0:
+        raise StoreError(f"{ENV_WAIT} is {raw!r}; give a wait of 0 s or more.")
+    return value
+
+
 def _is_lock_error(exc: Exception) -> bool:
     text = str(exc).lower()
     return "lock" in text and ("conflicting" in text or "could not set" in text)
@@ -245,7 +262,7 @@ def connect(
     path: str | Path | None = None,
     *,
     read_only: bool = False,
-    wait_s: float = 30.0,
+    wait_s: float | None = None,
     on_wait: Callable[[str], None] | None = None,
 ) -> duckdb.DuckDBPyConnection:
     """Open (and create or migrate) the store.
@@ -259,6 +276,7 @@ def connect(
     wait_s
         How long to wait for another process to release the store's lock [s]. DuckDB allows one
         writing process per file; a second one waits here, then fails with a clear message.
+        Default: ``$TUBETRACK_WAIT_S`` or 30 s.
     on_wait
         Called once with a message when the store is busy and we start waiting.
 
@@ -272,6 +290,8 @@ def connect(
     import duckdb
 
     target = str(default_db_path() if path is None else path)
+    if wait_s is None:
+        wait_s = _env_wait_s()
     if target != ":memory:" and read_only and not Path(target).exists():
         raise StoreError(
             f"store {target} does not exist. Run `tubetrack ingest PATH` (or `make demo`) first, "

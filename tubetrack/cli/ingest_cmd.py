@@ -95,6 +95,8 @@ class _RichProgress:
         self._total_files = 0
         self._rows = 0
         self._sizes: dict[str, int] = {}
+        self._order: list[str] = []  # paths in the order they were started
+        self._advanced = 0  # how many of them the bar has already counted
 
     def __enter__(self) -> _RichProgress:
         self._progress.__enter__()
@@ -112,7 +114,22 @@ class _RichProgress:
 
     def file_started(self, path: str, size_bytes: int) -> None:
         self._sizes[path] = size_bytes
+        self._order.append(path)
         self._update(Path(path).name)
+
+    def dicom_advance(self, done: int, total: int) -> None:
+        """The DICOM reader calls this as it starts each file of a batch (``done`` files read
+        so far; their reports come back only when the batch is stored): move the bar by the
+        bytes of every file started before this one."""
+        if self._task is None:
+            return
+        while self._advanced < len(self._order) - 1:
+            path = self._order[self._advanced]
+            self._advanced += 1
+            self._progress.advance(self._task, self._sizes.pop(path, 0))
+        self._progress.update(
+            self._task, files=f"files {self._files + done}/{self._total_files}"
+        )
 
     def file_done(self, report: FileReport) -> None:
         self._files += 1
