@@ -298,7 +298,7 @@ def tube_command(
         float_digits=2,
     )
     for r in summary.itertuples(index=False):
-        typer.echo(f"{r.focal_spot}: {r.health_level}: {r.reason}")
+        typer.echo(f"{r.health_level}: {r.reason}")  # the reason names its focal spot
     emit(
         stations,
         fmt,
