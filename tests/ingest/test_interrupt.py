@@ -83,6 +83,21 @@ def _totals(db: Path):
     return files, counts, rejects, checksum
 
 
+KILL_BEFORE_COMMIT = """
+import os, signal, sys
+from tubetrack.ingest import engine
+real = engine._ingest_in_txn
+def write_then_die(con, path, *args, **kwargs):
+    result = real(con, path, *args, **kwargs)
+    if path.name == sys.argv[1]:
+        os.kill(os.getpid(), signal.SIGKILL)  # rows written, transaction not committed
+    return result
+engine._ingest_in_txn = write_then_die
+from tubetrack.cli import app
+app(sys.argv[2:])
+"""
+
+
 @pytest.mark.slow
 def test_sigkill_mid_file_then_rerun(tmp_path):
     logs = tmp_path / "logs"
@@ -97,18 +112,17 @@ def test_sigkill_mid_file_then_rerun(tmp_path):
     assert [f[1:] for f in ref_totals[0]] == [(2, 2, 0, 0), (N_BIG, N_BIG - 6, 6, 0)]
 
     db = tmp_path / "killed.duckdb"
-    proc = _run(db, logs)
-    # kill once the big file is under way: the store file exists and the process still runs
-    deadline = time.monotonic() + 120
-    while time.monotonic() < deadline and not db.exists():
-        time.sleep(0.05)
-    time.sleep(1.5)
-    assert proc.poll() is None, (
-        "ingest finished before it could be killed; make the file bigger"
+    # Deterministic kill point: the child SIGKILLs itself once every row of the big file is
+    # written inside the file's transaction, before COMMIT (a wall-clock kill raced a fast
+    # machine, which sometimes finished the file first).
+    proc = subprocess.run(
+        [sys.executable, "-c", KILL_BEFORE_COMMIT, "exposures-b-big.csv", "ingest", "--db",
+         str(db), "--quiet", "--format", "json", str(logs)],
+        capture_output=True,
+        env=dict(os.environ, PYTHONUNBUFFERED="1"),
+        timeout=600,
     )
-    os.kill(proc.pid, signal.SIGKILL)
-    proc.wait(timeout=60)
-    assert proc.returncode == -signal.SIGKILL
+    assert proc.returncode == -signal.SIGKILL, proc.stderr.decode()
 
     # the store opens, and holds no partial file: every stored row belongs to a file recorded as
     # ingested, with exactly its accepted count
