@@ -154,12 +154,12 @@ def test_two_ingests_at_once_second_waits_or_fails_cleanly(tmp_path):
     text = err2.decode()
     assert "Traceback" not in text
     if second.returncode == 0:
-        # it waited for the first one, then found every file already ingested
-        assert "is in use by another process; waiting up to" in text
+        # it waited for the first one (or, on a fast machine, started after it), then found
+        # every file already ingested: nothing counted twice either way
         assert {o["status"] for o in json.loads(out2)} == {"already_ingested"}
     else:
         assert second.returncode == 1
-        assert text.startswith(
+        assert text.strip().splitlines()[-1].startswith(
             f"Error: store {db} is in use by another tubetrack process"
         )
     # nothing counted twice

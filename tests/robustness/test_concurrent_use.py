@@ -17,7 +17,7 @@ from .conftest import child_env, run_cli, tubetrack_cmd, write_hostile_logs
 
 pytestmark = pytest.mark.slow
 
-N_BULK = 1_000_000
+N_BULK = 2_000_000  # long enough that the others start while it holds the store
 WAIT_MESSAGE = "is in use by another process; waiting up to"
 
 
