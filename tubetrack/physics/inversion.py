@@ -380,17 +380,9 @@ def diameter_ratio_from_current_ratio(
         d/d0 [1] and its standard error [1] (measurement and model combined in quadrature; see
         :func:`invert_current_ratio` for the parts). Approximately q^(1/1.42).
     """
-    frame = invert_current_ratio(
-        current_ratio, spec, tube_current_ma, tube_voltage_kv, current_ratio_se
+    return _diameter_ratio_arrays(
+        current_ratio, spec, tube_current_ma, tube_voltage_kv, current_ratio_se, "current"
     )
-    shape = _result_shape(
-        spec, current_ratio, tube_current_ma, tube_voltage_kv, current_ratio_se
-    )
-    r = frame["diameter_ratio"].to_numpy().reshape(shape)
-    se = frame["diameter_ratio_se"].to_numpy().reshape(shape)
-    if r.ndim == 0:
-        return r[()], se[()]
-    return r, se
 
 
 def diameter_ratio_from_resistance_ratio(
@@ -406,17 +398,29 @@ def diameter_ratio_from_resistance_ratio(
     R_hot ~ rho(T) / d^2, so q = r^-2 rho(T_r)/rho(T0) ~ r^-2.06 (+11 % at 10 % mass loss).
     Returns (diameter_ratio, diameter_ratio_se) like :func:`diameter_ratio_from_current_ratio`.
     """
-    frame = invert_current_ratio(
+    return _diameter_ratio_arrays(
         resistance_ratio,
         spec,
         tube_current_ma,
         tube_voltage_kv,
         resistance_ratio_se,
-        signal="resistance",
+        "resistance",
     )
-    shape = _result_shape(
-        spec, resistance_ratio, tube_current_ma, tube_voltage_kv, resistance_ratio_se
+
+
+def _diameter_ratio_arrays(
+    ratio: ArrayLike,
+    spec: FilamentSpec,
+    tube_current_ma: ArrayLike,
+    tube_voltage_kv: ArrayLike,
+    ratio_se: ArrayLike | None,
+    signal: str,
+) -> tuple[Any, Any]:
+    """:func:`invert_current_ratio` reshaped to the broadcast input shape (0-d -> scalars)."""
+    frame = invert_current_ratio(
+        ratio, spec, tube_current_ma, tube_voltage_kv, ratio_se, signal=signal
     )
+    shape = _result_shape(spec, ratio, tube_current_ma, tube_voltage_kv, ratio_se)
     r = frame["diameter_ratio"].to_numpy().reshape(shape)
     se = frame["diameter_ratio_se"].to_numpy().reshape(shape)
     if r.ndim == 0:
