@@ -219,9 +219,7 @@ def survival_cmd(
         km["clock"] = clock.value
         inc_frames = []
         curve_frames = []
-        col = {"model": "model_label", "modality": "modality", "site": "site"}.get(
-            by.value if by else "", None
-        )
+        col = _group_columns().get(by.value if by else "", None)
         groups = (
             [("fleet", tab)]
             if col is None
@@ -435,9 +433,7 @@ def forecast_cmd(
         )
         summary = fc.summary
         if by is not None:
-            col = {"model": "model_label", "modality": "modality", "site": "site"}[
-                by.value
-            ]
+            col = _group_columns()[by.value]
             tubes = fc.tubes
             if col == "modality":
                 tubes = tubes.merge(life.frame[["tube_id", "modality"]], on="tube_id")
@@ -572,9 +568,7 @@ def spares_cmd(
             quiet=quiet,
             draws=parameter_draws,
         )
-        col = {"model": "model_label", "modality": "modality", "site": "site"}[
-            (by or GroupBy.model).value
-        ]
+        col = _group_columns()[(by or GroupBy.model).value]
         per = fc.per_tube
         if col == "modality":
             per = per.merge(life.frame[["tube_id", "modality"]], on="tube_id")
@@ -823,6 +817,13 @@ def uptime_cmd(
                 "meets_target",
             ],
         )
+
+
+def _group_columns() -> dict[str, str]:
+    """--by choice -> column (the one map, in tubetrack.fleet.survival)."""
+    from tubetrack.fleet.survival import GROUPINGS
+
+    return GROUPINGS
 
 
 def register(app: typer.Typer) -> None:
