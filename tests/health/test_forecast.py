@@ -85,3 +85,43 @@ def test_tube_without_filament_current_uses_workload_and_physics_only(mem_store,
     # prior-only wear factor (k ~ N(1, 0.5^2)): the loss is the physics prediction, widely uncertain
     assert st["k"] == pytest.approx(1.0) and np.sqrt(st["cov"][1, 1]) == pytest.approx(0.5)
     assert s["rul_days_p90"].iloc[0] > 2 * s["rul_days_p10"].iloc[0]
+
+
+def test_threshold_draws_are_conditional_on_survival():
+    # Source: scipy.stats.truncnorm (the normal truncated below at the present loss) as the
+    # reference distribution; Kolmogorov-Smirnov test of the draws against it.
+    from scipy import stats
+
+    from tubetrack.health.forecast import threshold_given_survival
+
+    rng = np.random.default_rng(3)
+    mu, sd, now = 0.048, 0.0055, 0.050
+    d = threshold_given_survival(np.full(20_000, now), mu, sd, np.inf, rng.random(20_000))
+    assert d.min() >= now
+    ref = stats.truncnorm((now - mu) / sd, np.inf, loc=mu, scale=sd)
+    assert stats.kstest(d, ref.cdf).pvalue > 0.01
+    # Student t: the conditional CDF is (F(x) - F(now)) / (1 - F(now))
+    dt = threshold_given_survival(np.full(20_000, now), mu, sd, 6.0, rng.random(20_000))
+    f = stats.t(6.0, loc=mu, scale=sd)
+    assert stats.kstest(dt, lambda x: (f.cdf(x) - f.cdf(now)) / f.sf(now)).pvalue > 0.01
+
+
+def test_tube_past_the_fleet_median_threshold_is_not_forecast_dead():
+    # A running filament whose loss already exceeds the threshold mean: its own failure point is
+    # above its present loss, so the median remaining life is (median of the truncated threshold
+    # - loss) / wear rate (deterministic wear, no workload spread), not zero.
+    from dataclasses import replace
+
+    from scipy import stats
+
+    from tubetrack.health.forecast import forecast_from_state
+    from tubetrack.health.params import HealthParams
+
+    p = replace(HealthParams(), n_samples=40_000, workload_sd=1e-9, workload_sd_unknown=1e-9)
+    state = {"tube_id": "T", "focal_spot": "large", "a": 0.0, "k": 1.0, "cov": np.eye(2) * 1e-20,
+             "x_now": 0.050, "x_pre_sd": 0.0, "rate_phys_per_day": 1e-4, "exposures_per_day": 40.0,
+             "workload_cv": float("nan")}
+    fc = forecast_from_state(state, 0.048, 0.0055, p)
+    med = stats.truncnorm((0.050 - 0.048) / 0.0055, np.inf, loc=0.048, scale=0.0055).median()
+    assert fc["rul_days_p50"] == pytest.approx((med - 0.050) / 1e-4, rel=0.03)
+    assert fc["rul_days_p10"] > 0

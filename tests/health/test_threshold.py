@@ -35,3 +35,49 @@ def test_default_until_three_failures_then_fleet():
     t = learn_threshold(many, 0.0513, 0.006, 3)
     assert t.source == "fleet" and t.mean == pytest.approx(0.045, abs=0.002)
     assert t.sd == pytest.approx(0.004, abs=0.0015)
+
+
+def test_censored_mle_matches_scipy_censored_normal_fit():
+    # Source: scipy.stats.norm.fit with scipy.stats.CensoredData (right censoring), the general-
+    # purpose reference; with zero estimation errors the model is exactly the censored normal.
+    from scipy import stats
+
+    from tubetrack.health.threshold import censored_normal_mle
+
+    rng = np.random.default_rng(11)
+    point = rng.normal(0.048, 0.0055, 120)
+    seen = rng.uniform(0.0, 0.06, 120)  # loss reached by the end of the logs
+    fail = point <= seen
+    y, c = point[fail], seen[~fail]
+    mu, tau, se_mu = censored_normal_mle(y, np.zeros(y.size), c, np.zeros(c.size))
+    ref_mu, ref_sd = stats.norm.fit(stats.CensoredData.right_censored(
+        np.r_[y, c], np.r_[np.zeros(y.size, bool), np.ones(c.size, bool)]))
+    assert mu == pytest.approx(ref_mu, rel=5e-4)
+    assert tau == pytest.approx(ref_sd, rel=2e-3)
+
+    def nll(m: float, s: float) -> float:
+        return -(stats.norm.logpdf(y, m, s).sum() + stats.norm.logsf(c, m, s).sum())
+
+    # and the optimum is at least as good as the reference optimiser's
+    assert nll(mu, tau) <= nll(ref_mu, ref_sd) + 1e-9
+    assert 0 < se_mu < tau
+
+
+def test_survivors_remove_the_low_bias_of_failures_only():
+    # Seeded simulation: only filaments with a low failure point fail within the window, so the
+    # failures alone underestimate the mean; the survivors (right-censored) restore it.
+    rng = np.random.default_rng(5)
+    n = 300
+    point = rng.normal(0.048, 0.0055, n)
+    seen = rng.uniform(0.01, 0.052, n)
+    fail = point <= seen
+    se = np.full(n, 0.0008)
+    noisy = point + rng.normal(0, 0.0008, n)
+    failed = pd.DataFrame({"loss": noisy[fail], "loss_se": se[fail]})
+    surv = pd.DataFrame({"loss": seen[~fail], "loss_se": se[~fail]})
+    only = learn_threshold(failed, 0.0513, 0.006, 3)
+    both = learn_threshold(failed, 0.0513, 0.006, 3, survivors=surv)
+    assert only.mean < 0.048 - 0.003  # biased low: truncated at the losses reached
+    assert both.mean == pytest.approx(0.048, abs=3 * np.sqrt(both.sd**2 / fail.sum()) + 0.0005)
+    assert both.sd == pytest.approx(0.0055, rel=0.35)
+    assert both.n_failures == int(fail.sum()) and both.source == "fleet"

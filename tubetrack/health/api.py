@@ -28,7 +28,12 @@ from tubetrack.health.forecast import (
 )
 from tubetrack.health.levels import assign_levels
 from tubetrack.health.params import HealthParams
-from tubetrack.health.threshold import Threshold, failed_focal_losses, learn_threshold
+from tubetrack.health.threshold import (
+    Threshold,
+    failed_focal_losses,
+    learn_threshold,
+    surviving_focal_losses,
+)
 
 if TYPE_CHECKING:  # pragma: no cover
     import duckdb
@@ -176,9 +181,10 @@ def analyse_frames(
                        for st in r["states"]]
     states = [st for r in results for st in r["states"]]
     removed_tubes = known[known["removed_at_utc"].notna()]
+    failed = failed_focal_losses(states, removed_tubes)
     thr = learn_threshold(
-        failed_focal_losses(states, removed_tubes), p.eol_diameter_loss, p.eol_diameter_loss_sd,
-        p.min_failures_for_threshold,
+        failed, p.eol_diameter_loss, p.eol_diameter_loss_sd, p.min_failures_for_threshold,
+        survivors=surviving_focal_losses(states, failed),
     )
     in_service = {tid for tid, m in metas.items() if m["removal_reason"] is None}
     summaries, cdf_rows, proj_rows = [], [], []

@@ -78,9 +78,7 @@ def forecast_from_state(state: dict[str, Any], threshold: float, threshold_sd: f
     a, k = ak[:, 0], ak[:, 1]
     pre = rng.normal(0.0, 1.0, n) * state["x_pre_sd"]
     loss_now = a + k * (state["x_now"] + pre)
-    z = rng.standard_normal(n) if not np.isfinite(threshold_df) else rng.standard_t(max(threshold_df, 1.0), n)
-    d = threshold + max(threshold_sd, 1e-9) * z
-    d = np.maximum(d, 0.005)
+    d = threshold_given_survival(loss_now, threshold, threshold_sd, threshold_df, rng.random(n))
     cv = state.get("workload_cv", np.nan)
     # unknown workload pattern (less than two full quarters logged): the wider default
     w_sd = max(params.workload_sd, float(cv)) if np.isfinite(cv) else params.workload_sd_unknown
@@ -113,6 +111,47 @@ def forecast_from_state(state: dict[str, Any], threshold: float, threshold_sd: f
              "diameter_loss_pct_p50": 100 * pq[1], "diameter_loss_pct_p90": 100 * pq[2]}
         ),
     }
+
+
+def threshold_given_survival(loss_now: np.ndarray, threshold: float, threshold_sd: float,
+                             threshold_df: float, u: np.ndarray) -> np.ndarray:
+    """Draws of the end-of-life threshold conditional on the filament still being intact.
+
+    A filament in service has not burnt through, so its own threshold exceeds its present loss:
+    each draw comes from the threshold's distribution (normal, or Student t with ``threshold_df``
+    degrees of freedom, location ``threshold``, scale ``threshold_sd``) truncated below at that
+    draw's ``loss_now`` (inverse-CDF sampling of the truncated distribution with the uniforms
+    ``u``). Without this condition a tube whose loss already passed the fleet's median threshold
+    would be forecast to fail "today" although it is running.
+
+    Parameters
+    ----------
+    loss_now
+        Diameter-loss draws at the analysis date [1].
+    threshold, threshold_sd
+        Location and scale of the threshold distribution [1].
+    threshold_df
+        Degrees of freedom (``inf`` = normal).
+    u
+        Uniform(0, 1) draws, same shape as ``loss_now``.
+
+    Returns
+    -------
+    numpy.ndarray
+        Threshold draws [1], each >= max(loss_now, 0.005).
+    """
+    from scipy import stats
+
+    dist = stats.norm if not np.isfinite(threshold_df) else stats.t(max(threshold_df, 1.0))
+    scale = max(threshold_sd, 1e-9)
+    lo = np.maximum(np.asarray(loss_now, float), 0.005)
+    f_lo = dist.cdf((lo - threshold) / scale)
+    # upper tail through the survival function: exact when f_lo is close to 1
+    s_lo = dist.sf((lo - threshold) / scale)
+    q = dist.isf(np.clip(s_lo * (1.0 - np.asarray(u, float)), 1e-300, 1.0))
+    d = threshold + scale * q
+    d = np.where(f_lo < 1.0, d, lo)
+    return np.maximum(d, lo)
 
 
 def _empty_frames() -> dict[str, pd.DataFrame]:
