@@ -11,7 +11,9 @@ rank   level         meaning
 4      past limit    the estimated diameter loss has already reached the expected end of life
 =====  ============  ==============================================================================
 
-Rules (first match from the top wins): past limit when the median remaining life is zero;
+Rules (first match from the top wins): past limit when the estimated diameter loss has reached
+the threshold in use (the forecast, conditioned on the filament still being intact, then gives a
+short remaining life rather than zero) or the median remaining life is zero;
 imminent when P(EOL <= 30 d) >= 0.25 or P(EOL <= 90 d) >= 0.5; prepare when
 P(EOL <= 180 d) >= 0.3 or a signature of level 2; observe when P(EOL <= 180 d) >= 0.05, a
 signature of level 1, or too little history; otherwise sound.
@@ -53,7 +55,9 @@ def assign_levels(summary: pd.DataFrame, threshold: float, min_history_days: flo
     sig = s["signature_level"].to_numpy(int)
     short = s["history_days"].to_numpy(float) < min_history_days
     rank = np.select(
-        [s["rul_days_p50"].to_numpy(float) <= 0.0, (p30 >= 0.25) | (p90 >= 0.5),
+        [(s["rul_days_p50"].to_numpy(float) <= 0.0)
+         | (s["diameter_loss_pct"].to_numpy(float) >= 100.0 * threshold),
+         (p30 >= 0.25) | (p90 >= 0.5),
          (p180 >= 0.3) | (sig >= 2), (p180 >= 0.05) | (sig >= 1) | short],
         [4, 3, 2, 1], default=0,
     )
@@ -97,6 +101,8 @@ def _reason(r: dict, threshold: float, cap: float, short: bool) -> str:
         f"of an expected {100 * threshold:.1f} %"
     )
     p50 = r["rul_days_p50"]
+    if p50 >= 1 and r["diameter_loss_pct"] >= 100.0 * threshold:
+        parts.append("past the fleet's expected end of life while the filament is still intact")
     if p50 < 1:
         parts.append("end of life already reached by the estimate: check the tube")
     else:
