@@ -50,6 +50,8 @@ class Step:
     heavy: bool = False  #: a whole-fleet analysis: run --repeat-heavy times (default once)
     items: int | None = None  # for a rate column (rows or files per second)
     stdout: Path | None = None
+    #: left out of a default run above the --small size (name it in --steps to run it)
+    optional: bool = False
 
 
 @dataclass
@@ -281,6 +283,7 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
             lambda: [PY, "-c", engine_code, "local", str(lake)],
             available=lambda: module_missing("tubetrack.engines", "run_health") or (None if lake.exists() else "no lake"),
             heavy=True,
+            optional=True,
         ),
         Step(
             "engine_spark",
@@ -289,6 +292,7 @@ def build_steps(ds: Dataset, work: Path, *, quiet_flag: list[str]) -> list[Step]
             floor="engine_local",
             available=lambda: module_missing("tubetrack.engines", "run_health") or module_missing("pyspark") or (None if lake.exists() else "no lake"),
             heavy=True,
+            optional=True,
         ),
     ]
     return steps
@@ -320,13 +324,17 @@ def _make_dicom(ds: Dataset, out: Path, n: int) -> None:
 # ----------------------------------------------------------------------------- running
 
 
-def run_steps(steps: list[Step], repeat: int, *, only: set[str] | None, log: Callable[[str], None], timeout_s: float, repeat_heavy: int = 1) -> list[Result]:
+def run_steps(steps: list[Step], repeat: int, *, only: set[str] | None, log: Callable[[str], None], timeout_s: float, repeat_heavy: int = 1, with_optional: bool = True) -> list[Result]:
     results: dict[str, Result] = {}
     for step in steps:
         res = Result(step)
         results[step.name] = res
         if only and step.name not in only:
             res.status, res.reason = "skipped", "not selected"
+            continue
+        if not only and step.optional and not with_optional:
+            res.status, res.reason = "skipped", f"opt-in at this size (--steps {step.name})"
+            log(f"  {step.name:<18} skipped: opt-in at this size")
             continue
         reason = step.available()
         if reason:
@@ -521,7 +529,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--repeat-heavy", type=int, default=1, help="Runs of the whole-fleet analyses (tubes, fleet forecast, report, engines). Default 1.")
     ap.add_argument("--data", type=Path, default=REPO_ROOT / "bench" / "data", help="Folder for generated data (git-ignored). Default bench/data.")
     ap.add_argument("--results", type=Path, default=REPO_ROOT / "bench" / "RESULTS.md", help="Markdown results file. Default bench/RESULTS.md.")
-    ap.add_argument("--steps", default="", help="Comma-separated step names to run (default all).")
+    ap.add_argument("--steps", default="", help="Comma-separated step names to run (default all; above the --small size the engine comparison engine_local,engine_spark runs only when named here).")
     ap.add_argument("--stand-in", action="store_true", help="Use the stand-in fleet even when the demo generator exists.")
     ap.add_argument("--timeout", type=float, default=1800.0, help="Kill a step after this long [s]. Default 1800.")
     args = ap.parse_args(argv)
@@ -546,7 +554,10 @@ def main(argv: list[str] | None = None) -> int:
     quiet = ["--quiet"] if cli_has_option("--quiet", "ingest") else []
     steps = build_steps(ds, work, quiet_flag=quiet)
     only = {s.strip() for s in args.steps.split(",") if s.strip()} or None
-    results = run_steps(steps, repeat, only=only, log=log, timeout_s=args.timeout, repeat_heavy=args.repeat_heavy)
+    # the engine comparison repeats the whole health analysis twice (Spark ~4x slower on two
+    # cores): part of the --small run, opt-in at larger sizes so the full run fits its time
+    results = run_steps(steps, repeat, only=only, log=log, timeout_s=args.timeout, repeat_heavy=args.repeat_heavy,
+                        with_optional=args.small)
     rows = table_rows(results)
     print(render_text(rows))
     total = time.perf_counter() - t0
