@@ -54,3 +54,21 @@ def test_step_fit_recovers_shift_and_remove_keeps_wear():
     assert b == pytest.approx(slope, rel=0.05)
     kept = segments.level_shifts(t, y, w, [(200.0, "detected"), (100.0, "calibration")])
     assert [k[0] for k in kept] == [200.0]
+
+
+def test_vectorised_pelt_reproduces_ruptures():
+    # the numpy PELT must give ruptures' own break points (same recursion, pruning, tie-breaking)
+    import ruptures as rpt
+
+    rng = np.random.default_rng(5)
+    for _ in range(60):
+        n = int(rng.integers(25, 130))
+        ms = int(rng.integers(3, 12))
+        t = np.sort(rng.uniform(0, 400, n))
+        y = -1e-4 * t + rng.normal(0, 0.003, n)
+        for k in rng.integers(0, n, 2):
+            y[k:] += rng.normal(0, 0.01)
+        pen = 3.0 * np.var(np.diff(y)) * np.log(n)
+        sig = np.column_stack([t, y])
+        ref = rpt.Pelt(custom_cost=segments.CostPiecewiseLinear(), min_size=ms, jump=1).fit(sig).predict(pen=pen)
+        assert segments.pelt(segments.CostPiecewiseLinear().fit(sig), pen, ms) == ref

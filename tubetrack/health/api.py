@@ -28,6 +28,7 @@ from tubetrack.health.forecast import (
 )
 from tubetrack.health.levels import assign_levels
 from tubetrack.health.params import HealthParams
+from tubetrack.health.drift import as_datetime
 from tubetrack.health.threshold import (
     Threshold,
     failed_focal_losses,
@@ -151,12 +152,12 @@ def analyse_frames(
     """
     p = params or HealthParams()
     cut = pd.Timestamp(as_of)
-    day = pd.to_datetime(daily["day"])
+    day = as_datetime(daily["day"])
     d = daily[day < cut].assign(day=day[day < cut])
     cal = calibrations if calibrations is not None else pd.DataFrame(columns=["tube_id", "focal_spot", "day"])
-    cal = cal[pd.to_datetime(cal["day"]) < cut] if len(cal) else cal
+    cal = cal[as_datetime(cal["day"]) < cut] if len(cal) else cal
     ev = events if events is not None else pd.DataFrame(columns=["tube_id", "category", "day", "n_events"])
-    ev = ev[pd.to_datetime(ev["day"]) < cut] if len(ev) else ev
+    ev = ev[as_datetime(ev["day"]) < cut] if len(ev) else ev
     known = tubes_as_of(tubes, cut)
     by_tube = {k: g for k, g in d.groupby("tube_id", sort=True)}
     cal_by = {k: g for k, g in cal.groupby("tube_id")} if len(cal) else {}

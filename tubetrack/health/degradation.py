@@ -37,6 +37,8 @@ import pandas as pd
 
 from tubetrack.errors import TubetrackWarning
 
+from tubetrack.health.drift import as_datetime
+
 
 class PhysicsAdapter:
     """The two physics relations the health analysis needs, from :mod:`tubetrack.physics`."""
@@ -191,7 +193,7 @@ def wear_index(daily_fs: pd.DataFrame, focal_spot: str, phys) -> pd.DataFrame:
     rate = phys.wear_rate_per_s(focal_spot, daily_fs["tube_current_ma"].to_numpy(float),
                                 daily_fs["tube_voltage_med_kv"].to_numpy(float))
     rate = np.where(np.isfinite(rate), rate, 0.0)
-    f = pd.DataFrame({"day": pd.to_datetime(daily_fs["day"]).to_numpy(), "hot_s": hot, "wear": hot * rate,
+    f = pd.DataFrame({"day": as_datetime(daily_fs["day"]).to_numpy(), "hot_s": hot, "wear": hot * rate,
                       "n_exposures": daily_fs["n_exposures"].to_numpy(float)})
     g = f.groupby("day", as_index=False)[["hot_s", "wear", "n_exposures"]].sum().sort_values("day")
     g["x"] = g["wear"].cumsum()

@@ -38,6 +38,17 @@ MEDIAN_SE_FACTOR = float(np.sqrt(np.pi / 2.0))
 NORMAL_IQR = 1.3489795
 
 
+def as_datetime(values: pd.Series) -> pd.Series:
+    """``pd.to_datetime(values)``, skipped when the column already is ``datetime64``.
+
+    ``pd.to_datetime`` on a datetime column is a no-op that still iterates the values (its
+    default cache check), which cost ~9 % of the per-tube time.
+    """
+    if isinstance(values, pd.Series) and values.dtype.kind == "M":
+        return values
+    return pd.to_datetime(values)
+
+
 @dataclass(frozen=True)
 class KvModel:
     """Per tube x focal spot kV model of ln(filament current), fitted on a baseline window.
@@ -152,7 +163,7 @@ def normalise(daily: pd.DataFrame, model: KvModel) -> pd.DataFrame:
     out = pd.DataFrame(
         {
             "tube_current_ma": d["tube_current_ma"].to_numpy(float),
-            "day": pd.to_datetime(d["day"]).to_numpy(),
+            "day": as_datetime(d["day"]).to_numpy(),
             "n_current": n,
             "log_i_norm": y,
             "rel_sigma": np.where(n >= 4, rel_iqr / NORMAL_IQR, np.nan),
@@ -194,7 +205,7 @@ def normalise_calibrations(calib: pd.DataFrame, model: KvModel) -> pd.DataFrame:
     return pd.DataFrame(
         {
             "tube_current_ma": calib["tube_current_ma"].to_numpy(float),
-            "day": pd.to_datetime(calib["day"]).to_numpy(),
+            "day": as_datetime(calib["day"]).to_numpy(),
             "filament_current_norm_a": np.exp(y),
         }
     )

@@ -32,6 +32,7 @@ from tubetrack.health.degradation import (
     wear_index,
 )
 from tubetrack.health.params import HealthParams
+from tubetrack.health.drift import as_datetime
 from tubetrack.health.signatures import tube_signatures
 
 #: Horizons of the stored end-of-life CDF [days].
@@ -208,7 +209,7 @@ def analyse_tube(
     ev = events if events is not None else pd.DataFrame(columns=["tube_id", "category", "day", "n_events"])
     rows, drifts, diams, cps, states = [], [], [], [], []
     projections, cdfs = {}, {}
-    daily = daily.assign(day=pd.to_datetime(daily["day"]))
+    daily = daily.assign(day=as_datetime(daily["day"]))
     for focal in sorted(daily["focal_spot"].dropna().unique()):
         dfs = daily[daily["focal_spot"] == focal]
         kvm = drift.fit_kv_model(dfs, focal, baseline_days=p.baseline_days)
@@ -238,7 +239,7 @@ def analyse_tube(
             )
             cands = [(float(tt[i]), "detected") for i in idx]
             if len(calib):
-                cdays = pd.to_datetime(
+                cdays = as_datetime(
                     calib.loc[calib["focal_spot"] == focal, "day"]
                 ).drop_duplicates()
                 ct = ((cdays - kvm.baseline_start).dt.days.astype(float)).to_numpy()
@@ -442,7 +443,7 @@ def workload_cv(wear: pd.DataFrame, block_days: int) -> float:
     """
     if wear.empty:
         return 0.5
-    d = pd.to_datetime(wear["day"])
+    d = as_datetime(wear["day"])
     blk = ((d - d.min()).dt.days // block_days).to_numpy()
     full = blk < blk.max()  # the last block is usually partial
     if np.unique(blk[full]).size < 2:

@@ -71,6 +71,67 @@ class CostPiecewiseLinear(BaseCost):  # type: ignore[misc]
         rss = syy - (sty * sty / stt if stt > 1e-12 else 0.0)
         return float(max(rss, 0.0))
 
+    def errors(self, starts: np.ndarray, end: int) -> np.ndarray:
+        """:meth:`error` of the segments ``[s, end)`` for every ``s`` in ``starts`` at once.
+
+        The same floating-point operations in the same order as :meth:`error`, element-wise, so
+        the values are bit-identical to the scalar calls.
+        """
+        s = starts
+        n = end - self._n[s]
+        st = self._st[end] - self._st[s]
+        sy = self._sy[end] - self._sy[s]
+        stt = self._stt[end] - self._stt[s] - st * st / n
+        sty = self._sty[end] - self._sty[s] - st * sy / n
+        syy = self._syy[end] - self._syy[s] - sy * sy / n
+        # x / inf = 0 where the scalar version takes 0 (stt <= 1e-12); elsewhere the same division
+        fit = sty * sty / np.where(stt > 1e-12, stt, np.inf)
+        return np.maximum(syy - fit, 0.0)
+
+
+def pelt(cost: CostPiecewiseLinear, pen: float, min_size: int) -> list[int]:
+    """Exact PELT (Killick et al. 2012) with every point a candidate, vectorised over candidates.
+
+    Reproduces ``ruptures.Pelt(custom_cost=cost, min_size=min_size, jump=1).predict(pen)``
+    (ruptures 1.1): the same recursion, candidate set, pruning rule and tie-breaking (the first,
+    i.e. earliest, of equal costs), and the same floating-point sums, so the break points are
+    identical; only the per-candidate Python loop and dictionary copies are gone.
+
+    Returns
+    -------
+    list of int
+        Sorted segment ends, the last being ``n`` (as ``ruptures`` returns them).
+    """
+    n = cost._n.size - 1
+    min_size = max(int(min_size), CostPiecewiseLinear.min_size)
+    if n < min_size:
+        raise ValueError("signal shorter than min_size")
+    total = np.full(n + 1, np.nan)  # total[t]: penalised cost of the best partition of [0, t)
+    last = np.zeros(n + 1, dtype=np.intp)  # start of the last segment of that partition
+    total[0] = 0.0
+    buf = np.zeros(n + 1, dtype=np.intp)
+    adm = buf[:0]
+    for bkp in range(min_size, n + 1):
+        new = bkp - min_size
+        # ruptures drops a new candidate that has no partition (0 < t < min_size)
+        if new == 0 or new >= min_size:
+            k = adm.size
+            buf[:k] = adm
+            buf[k] = new
+            adm = buf[: k + 1]
+        vals = total[adm] + (cost.errors(adm, bkp) + pen)
+        j = int(np.argmin(vals))
+        best = vals[j]
+        total[bkp] = best
+        last[bkp] = adm[j]
+        adm = adm[vals <= best + pen].copy()
+    out = []
+    e = n
+    while e > 0:
+        out.append(int(e))
+        e = int(last[e])
+    return sorted(out)
+
 
 def robust_sigma(y: np.ndarray) -> float:
     """Noise scale of one observation: 1.4826 MAD(first differences) / sqrt(2)."""
@@ -111,8 +172,6 @@ def detect_breaks(
     list of int
         0 < index < n, ascending; empty when the series has no change point.
     """
-    import ruptures as rpt
-
     t = np.asarray(t, float)
     y = np.asarray(y, float)
     n = y.size
@@ -123,9 +182,7 @@ def detect_breaks(
         s = float(np.std(y)) or 1e-6
     pen = penalty_c * s * s * np.log(n)
     if n <= max_points:
-        algo = rpt.Pelt(custom_cost=CostPiecewiseLinear(), min_size=min_size, jump=1)
-        algo.fit(np.column_stack([t, y]))
-        return [int(b) for b in algo.predict(pen=pen)[:-1]]
+        return pelt(CostPiecewiseLinear().fit(np.column_stack([t, y])), pen, min_size)[:-1]
     # Long series: PELT on block means (a block of m points has noise sigma / sqrt(m)), then each
     # break is refined to the exact observation by a two-segment search in the full series.
     m = int(np.ceil(n / max_points))
@@ -133,9 +190,8 @@ def detect_breaks(
     tb = t[: nb * m].reshape(nb, m).mean(axis=1)
     yb = y[: nb * m].reshape(nb, m).mean(axis=1)
     pen_b = penalty_c * (s * s / m) * np.log(n)
-    algo = rpt.Pelt(custom_cost=CostPiecewiseLinear(), min_size=max(2, min_size // m), jump=1)
-    algo.fit(np.column_stack([tb, yb]))
-    coarse = [int(b) * m for b in algo.predict(pen=pen_b)[:-1]]
+    coarse_cost = CostPiecewiseLinear().fit(np.column_stack([tb, yb]))
+    coarse = [b * m for b in pelt(coarse_cost, pen_b, max(2, min_size // m))[:-1]]
     cost = CostPiecewiseLinear().fit(np.column_stack([t, y]))
     bounds = [0, *coarse, n]
     refined = []

@@ -21,6 +21,8 @@ import numpy as np
 import pandas as pd
 from scipy.stats import norm
 
+from tubetrack.health.drift import as_datetime
+
 
 @dataclass(frozen=True)
 class PoissonTrend:
@@ -165,7 +167,7 @@ def tube_signatures(
     """
     p = params or SignatureParams()
     out: dict = {"signals": [], "reasons": [], "level": 0}
-    days = pd.to_datetime(daily["day"])
+    days = as_datetime(daily["day"])
     recent = days >= as_of - pd.Timedelta(days=p.recent_days)
     n_all = float(daily["n_exposures"].sum())
     n_recent = float(daily.loc[recent, "n_exposures"].sum())
@@ -216,7 +218,7 @@ def tube_signatures(
         out["level"] = max(out["level"], 1)
     counts: dict[str, int] = {}
     if len(events):
-        ev_recent = events[pd.to_datetime(events["day"]) >= as_of - pd.Timedelta(days=p.recent_days)]
+        ev_recent = events[as_datetime(events["day"]) >= as_of - pd.Timedelta(days=p.recent_days)]
         counts = ev_recent.groupby("category")["n_events"].sum().astype(int).to_dict()
     out["fault_counts_recent"] = counts
     for cat in FAULT_CATEGORIES:
@@ -238,7 +240,7 @@ def _resistance_change_pct(daily: pd.DataFrame, days: pd.Series, recent: pd.Seri
     d = daily[daily["n_voltage"] > 0]
     if d.empty:
         return float("nan")
-    dd = pd.to_datetime(d["day"])
+    dd = as_datetime(d["day"])
     first = dd < dd.min() + pd.Timedelta(days=30)
     rec = recent.loc[d.index]
     base = d[first].groupby("tube_current_ma")["filament_resistance_med_ohm"].median()
