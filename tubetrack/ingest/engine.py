@@ -11,13 +11,14 @@ and inserted. The whole file is one transaction.
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from tubetrack.ingest import reader as rd
-from tubetrack.ingest.layout import KINDS, kind_from_header, kind_from_name
+from tubetrack.ingest.layout import KINDS, Kind, kind_from_header, kind_from_name
 from tubetrack.ingest.profiles import Profile
 from tubetrack.ingest.report import (
     STATUS_ALREADY,
@@ -33,12 +34,20 @@ from tubetrack.ingest.source import (
     STAGE,
     FileFailure,
     Params,
+    Source,
     list_columns,
     open_source,
     resolve_columns,
     short_error,
+    typed_csv_sql,
 )
-from tubetrack.ingest.stage_sql import build_stage, line_expr, sql_text
+from tubetrack.ingest.stage_sql import (
+    build_fast_select,
+    build_stage,
+    fast_types,
+    line_expr,
+    sql_text,
+)
 from tubetrack.store import quote_ident as qi
 from tubetrack.store import utcnow
 
@@ -327,6 +336,23 @@ def _ingest_in_txn(
         )
     kind = KINDS[kind_name]
     mapped, constants, ignored = resolve_columns(kind, src, profile, shown, path.name)
+    if not dry_run and profile is None and src.fmt == "csv" and not kind.upsert:
+        fast = _fast_ingest(
+            con,
+            shown,
+            scan,
+            src,
+            kind,
+            mapped,
+            ignored,
+            Params(dict(p.values)),
+            now_utc,
+            started,
+        )
+        if fast is not None:
+            return fast, None
+        # some row needs the per-field path: it starts again in a fresh transaction
+        _drop_temps(con)
     stage_sql = build_stage(kind, src, mapped, constants, profile, p, now_utc)
     try:
         con.execute(stage_sql, p.values)
@@ -429,18 +455,7 @@ def _ingest_in_txn(
     key = kind.key
     key_cols = ", ".join(qi(k) for k in key)
     cols = [f.name for f in kind.fields]
-    derived = {c: qi(c) for c in cols}
-    if kind.name == "exposures":
-        derived["exposure_mas"] = (
-            "COALESCE(exposure_mas, tube_current_ma * exposure_time_s)"
-        )
-        derived["exposure_time_s"] = (
-            "COALESCE(exposure_time_s, exposure_mas / tube_current_ma)"
-        )
-        derived["arc_count"] = "COALESCE(arc_count, 0)"
-    if kind.name == "downtime":
-        derived["severity"] = "COALESCE(severity, 'hard_down')"
-    sel = ", ".join(f"{derived[c]} AS {qi(c)}" for c in cols)
+    sel = _derived_select(kind)
     # rank within the file only among keys that repeat (a hash aggregate finds them; the
     # common case of no repeats then needs no sort)
     con.execute(
@@ -607,4 +622,186 @@ def _csv_reason(reasons: dict[str, str], error_type: object) -> str:
     """Our reason text for one of DuckDB's CSV error types."""
     return reasons.get(
         str(error_type), f"malformed line: {str(error_type).lower()}; fix the line"
+    )
+
+
+def _derived_select(kind: Kind) -> str:
+    """Canonical columns as stored: the fields, with the kind's derived values filled in."""
+    cols = [f.name for f in kind.fields]
+    derived = {c: qi(c) for c in cols}
+    if kind.name == "exposures":
+        derived["exposure_mas"] = (
+            "COALESCE(exposure_mas, tube_current_ma * exposure_time_s)"
+        )
+        derived["exposure_time_s"] = (
+            "COALESCE(exposure_time_s, exposure_mas / tube_current_ma)"
+        )
+        derived["arc_count"] = "COALESCE(arc_count, 0)"
+    if kind.name == "downtime":
+        derived["severity"] = "COALESCE(severity, 'hard_down')"
+    return ", ".join(f"{derived[c]} AS {qi(c)}" for c in cols)
+
+
+_PARAM = re.compile(r"\$(p[0-9]+)\b")
+
+
+def _used(sql: str, p: Params) -> dict[str, Any]:
+    """The bound values a statement refers to (DuckDB refuses unused named parameters)."""
+    names = set(_PARAM.findall(sql))
+    return {k: v for k, v in p.values.items() if k in names}
+
+
+def _fast_ingest(
+    con: duckdb.DuckDBPyConnection,
+    shown: str,
+    scan: rd.FileScan,
+    src: Source,
+    kind: Kind,
+    mapped: dict[str, tuple[str, ...]],
+    ignored: list[str],
+    p: Params,
+    now_utc: datetime,
+    started: datetime,
+) -> FileReport | None:
+    """Ingest an open-layout CSV in one typed pass straight into its table, or return ``None``.
+
+    The file is read with DuckDB types (numbers as DOUBLE) and strictly, and every check of the
+    per-field path is one boolean per row (:func:`build_fast_select`); the rows go straight into
+    the target table with no staging copy. The first malformed line, cell that does not convert
+    or row failing a check raises inside DuckDB: the transaction is rolled back, a new one begun,
+    and ``None`` returned, so the caller reads the file on the per-field path, which gives every
+    reject its line, field, value and reason. So a file either goes in whole here, with no
+    rejects, or exactly as the per-field path would take it.
+
+    Duplicates are removed after the insert, among the rows this transaction appended (row ids
+    above the table's largest before it): later repeats of a key within the file, then rows whose
+    key is already stored (restricted to the new rows' systems and time range, as on the per-field
+    path). Counts are exact: rows read = inserted = accepted + duplicate.
+    """
+    import duckdb
+
+    target = kind.table
+    typed_from = typed_csv_sql(src, fast_types(kind, mapped), p)
+    join, line = line_expr(con, src, scan, csv_rejects=False)
+    fluoro = False
+    if kind.name == "exposures":
+        fluoro = bool(
+            con.execute(
+                "SELECT count(*) FROM systems WHERE modality = 'fluoroscopy'"
+            ).fetchone()[0]
+        )
+    sel = build_fast_select(kind, mapped, typed_from, join, line, now_utc, fluoro)
+    cols = [f.name for f in kind.fields]
+    col_list = ", ".join(qi(c) for c in cols)
+    extra_cols, extra_vals = ", source_file", f", {p.add(shown)}"
+    if kind.has_line:
+        extra_cols += ", source_line"
+        extra_vals += ", _line"
+    if kind.name == "exposures":
+        extra_cols += ", source_kind"
+        extra_vals += ", 'log'"
+    before = con.execute(f"SELECT max(rowid) FROM {target}").fetchone()[0]
+    last = -1 if before is None else int(before)
+    sql = (
+        f"INSERT INTO {target} ({col_list}{extra_cols}) SELECT {_derived_select(kind)}"
+        f"{extra_vals} FROM ({sel}) f"
+    )
+    try:
+        n_read = int(con.execute(sql, _used(sql, p)).fetchone()[0])
+    except duckdb.Error:
+        con.execute("ROLLBACK")
+        con.execute("BEGIN TRANSACTION")
+        return None
+
+    new = f"rowid > {last}"
+    key = kind.key
+    key_cols = ", ".join(qi(k) for k in key)
+    n_dup_in = 0
+    has_rep = 1
+    tc = kind.time_column
+    if tc and tc in key:
+        # times strictly increasing in any order are all distinct, and so are keys holding
+        # them: one streaming pass (0.07 s on 10 M rows) instead of a hash aggregate (1.6 s)
+        rising = con.execute(
+            f"SELECT bool_and(d) FROM (SELECT {qi(tc)} > lag({qi(tc)}) OVER () AS d "
+            f"FROM {target} WHERE {new})"
+        ).fetchone()[0]
+        has_rep = 0 if rising is None or rising else 1
+    if has_rep:
+        has_rep = con.execute(
+            f"SELECT count(*) FROM (SELECT 1 FROM {target} WHERE {new} GROUP BY {key_cols} "
+            "HAVING count(*) > 1)"
+        ).fetchone()[0]
+    if has_rep:
+        # keep the first row of each repeated key in file order, as the per-field path does
+        order = "source_line" if kind.has_line else "rowid"
+        n_dup_in = int(
+            con.execute(
+                f"DELETE FROM {target} WHERE rowid IN (SELECT rowid FROM (SELECT rowid, "
+                f"row_number() OVER (PARTITION BY {key_cols} ORDER BY {order}) AS rk FROM "
+                f"{target} WHERE {new}) WHERE rk > 1)"
+            ).fetchone()[0]
+        )
+    n_dup_store = 0
+    if last >= 0 and n_read > n_dup_in:
+        prune = ""
+        if tc:
+            lo, hi = con.execute(
+                f"SELECT min({qi(tc)}), max({qi(tc)}) FROM {target} WHERE {new}"
+            ).fetchone()
+            if lo is not None:
+                prune = (
+                    f" AND e.{qi(tc)} BETWEEN TIMESTAMP '{lo:%Y-%m-%d %H:%M:%S.%f}' "
+                    f"AND TIMESTAMP '{hi:%Y-%m-%d %H:%M:%S.%f}'"
+                )
+        if "system_id" in key:
+            prune += f" AND e.system_id IN (SELECT DISTINCT system_id FROM {target} WHERE {new})"
+        con.execute(
+            f"CREATE OR REPLACE TEMP TABLE _tt_existing AS SELECT {key_cols} FROM {target} e "
+            f"WHERE e.rowid <= {last}{prune}"
+        )
+        match = " AND ".join(f"e.{qi(k)} IS NOT DISTINCT FROM g.{qi(k)}" for k in key)
+        n_dup_store = int(
+            con.execute(
+                f"DELETE FROM {target} WHERE rowid IN (SELECT g.rowid FROM {target} g WHERE "
+                f"g.{new} AND EXISTS (SELECT 1 FROM _tt_existing e WHERE {match}))"
+            ).fetchone()[0]
+        )
+    n_dup = n_dup_in + n_dup_store
+    n_new = n_read - n_dup
+    row = con.execute(
+        "INSERT INTO ingest_files (path, sha256, table_kind, profile, status, started_at_utc, "
+        "rows_read, rows_accepted, rows_rejected, rows_duplicate, finished_at_utc) "
+        "VALUES (?, ?, ?, NULL, ?, ?, ?, ?, 0, ?, ?) RETURNING file_id",
+        [
+            shown,
+            scan.sha256,
+            kind.name,
+            STATUS_INGESTED,
+            started,
+            n_read,
+            n_new,
+            n_dup,
+            utcnow(),
+        ],
+    ).fetchone()
+    message = ""
+    if ignored:
+        message = f"ignored columns: {', '.join(ignored[:10])}" + (
+            " ..." if len(ignored) > 10 else ""
+        )
+    if n_read == 0:
+        message = (message + "; " if message else "") + "header only: no data rows"
+    return FileReport(
+        shown,
+        kind.name,
+        None,
+        STATUS_INGESTED,
+        rows_read=n_read,
+        rows_accepted=n_new,
+        rows_rejected=0,
+        rows_duplicate=n_dup,
+        message=message,
+        sha256=scan.sha256,
+        file_id=int(row[0]),
     )

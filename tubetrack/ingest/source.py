@@ -60,6 +60,10 @@ class Source:
     fmt: str
     header_lines: int  # lines before the first record (CSV header = 1)
     json: bool = False
+    csv_path: str = ""  # bound parameter holding the path (CSV only)
+    csv_opts: tuple[
+        str, ...
+    ] = ()  # read_csv options shared by the text and typed readers
 
 
 def open_source(
@@ -126,26 +130,49 @@ def open_source(
         delim = _guess_delimiter(header)
     cols = _split_header(header, delim)
     internal = {f"c{i}": "VARCHAR" for i in range(len(cols))}
-    opts = [
+    base = [
         f"delim={p.add(delim)}",
         "quote='\"'",
         "escape='\"'",
         "header=true",
         "auto_detect=false",
-        f"columns={p.add(internal)}",
         f"max_line_size={MAX_LINE_BYTES}",
+        f"compression='{'gzip' if scan.gzip else 'none'}'",
+    ]
+    if enc != "utf-8":
+        base.append(f"encoding={p.add(enc)}")
+    opts = [
+        *base,
+        f"columns={p.add(internal)}",
         "ignore_errors=true",
         "store_rejects=true",
         f"rejects_table='{CSV_REJ}'",
         f"rejects_scan='{CSV_SCAN}'",
-        f"compression='{'gzip' if scan.gzip else 'none'}'",
     ]
-    if enc != "utf-8":
-        opts.append(f"encoding={p.add(enc)}")
     inner = f"read_csv({ppath}, {', '.join(opts)})"
     renames = ", ".join(f"c{i} AS {qi(c)}" for i, c in enumerate(_dedupe(cols)))
     sql = f"(SELECT row_number() OVER () AS _rec, {renames} FROM {inner})"
-    return Source(sql, tuple(_dedupe(cols)), "csv", 1)
+    return Source(
+        sql, tuple(_dedupe(cols)), "csv", 1, csv_path=ppath, csv_opts=tuple(base)
+    )
+
+
+def typed_csv_sql(src: Source, types: dict[str, str], p: Params) -> str:
+    """FROM item reading a CSV source with DuckDB types per column (``types``: file column ->
+    SQL type, VARCHAR when absent), strictly: any malformed line or cell that does not convert
+    raises instead of becoming a reject (the caller then takes the per-field path).
+
+    ``p`` must be the :class:`Params` the source was opened with (its path and options are bound
+    there).
+    """
+    assert src.fmt == "csv" and src.csv_path
+    internal = {f"c{i}": types.get(c, "VARCHAR") for i, c in enumerate(src.columns)}
+    opts = [*src.csv_opts, f"columns={p.add(internal)}", "ignore_errors=false"]
+    renames = ", ".join(f"c{i} AS {qi(c)}" for i, c in enumerate(src.columns))
+    return (
+        f"(SELECT row_number() OVER () AS _rec, {renames} FROM "
+        f"read_csv({src.csv_path}, {', '.join(opts)}))"
+    )
 
 
 def _header_text(head: bytes, encoding: str) -> str:

@@ -442,18 +442,22 @@ def _tz_ctes(name: str, prev: str, profile: Profile | None, p: Params) -> list[s
 
 
 def line_expr(
-    con: duckdb.DuckDBPyConnection, src: Source, scan: rd.FileScan
+    con: duckdb.DuckDBPyConnection,
+    src: Source,
+    scan: rd.FileScan,
+    csv_rejects: bool = True,
 ) -> tuple[str, str]:
     """(join clause, line expression) turning record numbers into 1-based file lines.
 
     DuckDB's CSV reader skips blank lines and takes malformed lines out of the stream; both are
     counted back: with the sorted skipped lines s_1 < s_2 < ... (all after the header's h lines),
-    record i sits on line ``h + i + #{j : i >= s_j - j - h + 1}``.
+    record i sits on line ``h + i + #{j : i >= s_j - j - h + 1}``. ``csv_rejects=False``: the
+    file was read strictly (no reject table), only blank lines are skipped.
     """
     if src.fmt == "parquet":
         return "", "s._rec"
     skipped = set(scan.blank_lines)
-    if src.fmt == "csv":
+    if src.fmt == "csv" and csv_rejects:
         try:
             rows = con.execute(f"SELECT DISTINCT line FROM {CSV_REJ}").fetchall()
             skipped |= {int(r[0]) for r in rows}
@@ -470,4 +474,143 @@ def line_expr(
     return (
         " ASOF LEFT JOIN (SELECT t, max(k) AS k FROM _tt_skip GROUP BY t) sk ON s._rec >= sk.t",
         f"(s._rec + {h} + COALESCE(sk.k, 0))",
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# fast path: our open layout read typed, checked by one filter expression
+# --------------------------------------------------------------------------------------------
+
+#: Message of the error the fast path raises on the first row that needs the per-field path.
+FAST_MISS = "tubetrack-fast-path: a row needs the per-field check"
+
+
+def fast_types(kind: Kind, mapped: dict[str, tuple[str, ...]]) -> dict[str, str]:
+    """DuckDB type per file column for the typed read (numbers as DOUBLE, the rest as text)."""
+    out = {}
+    for f in kind.fields:
+        cols = mapped.get(f.name)
+        if cols and len(cols) == 1 and f.type in ("number", "integer"):
+            out[cols[0]] = "DOUBLE"
+    return out
+
+
+def build_fast_select(
+    kind: Kind,
+    mapped: dict[str, tuple[str, ...]],
+    typed_from: str,
+    join: str,
+    line: str,
+    now_utc: datetime,
+    fluoro: bool,
+) -> str:
+    """SELECT of the canonical values of an open-layout CSV read with :func:`fast_types`.
+
+    The values are exactly those :func:`build_stage` gives (same conversions, the text cells
+    trimmed the same way); every check of :func:`build_stage` is folded into one boolean, and a row
+    failing it raises ``FAST_MISS`` (``error()``), so the caller redoes the file on the per-field
+    path, which names each reason. Columns: ``_line`` then the kind's fields.
+    """
+    from tubetrack.ingest.validate import (
+        FLUORO_MAX_EXPOSURE_TIME_S,
+        FUTURE_SLACK_H,
+        MIN_TIMESTAMP_UTC,
+        RANGES,
+    )
+
+    vals: list[str] = []
+    oks: list[str] = []
+    limit = now_utc.replace(microsecond=0)
+    for f in kind.fields:
+        cols = mapped.get(f.name)
+        raw = f"s.{qi(cols[0])}" if cols else "CAST(NULL AS VARCHAR)"
+        v = qi("v__" + f.name)
+        req = "false" if f.required else "true"
+        if f.type in ("number", "integer"):
+            d = raw if cols else "CAST(NULL AS DOUBLE)"
+            rng = RANGES.get(f.name)
+            in_range = "true"
+            if rng is not None:
+                high = repr(float(rng.high))
+                if f.name == "exposure_time_s" and kind.name == "exposures" and fluoro:
+                    high = (
+                        f"(CASE WHEN COALESCE({qi('v__system_id')} IN (SELECT system_id FROM "
+                        f"systems WHERE modality = 'fluoroscopy'), false) THEN "
+                        f"{float(FLUORO_MAX_EXPOSURE_TIME_S)!r} ELSE {high} END)"
+                    )
+                in_range = f"{v} >= {float(rng.low)!r} AND {v} <= {high}"
+            if f.type == "number":
+                vals.append(f"{d} AS {v}")
+                oks.append(
+                    f"(CASE WHEN {v} IS NULL THEN {req} ELSE isfinite({v}) AND {in_range} END)"
+                )
+            else:
+                dq = qi("d__" + f.name)
+                vals.append(f"{d} AS {dq}")
+                vals.append(
+                    f"(CASE WHEN isfinite({d}) AND {d} = round({d}) AND abs({d}) < 2147483647 "
+                    f"THEN CAST({d} AS INTEGER) END) AS {v}"
+                )
+                oks.append(
+                    f"(CASE WHEN {dq} IS NULL THEN {req} ELSE {v} IS NOT NULL AND {in_range} END)"
+                )
+            continue
+        m = f"NULLIF(trim({raw}), '')"
+        if f.type == "bool":
+            trues = ", ".join(sql_text(x) for x in _TRUE)
+            falses = ", ".join(sql_text(x) for x in _FALSE if x)
+            vals.append(f"{m} AS {qi('m__' + f.name)}")
+            mq = qi("m__" + f.name)
+            vals.append(
+                f"(CASE WHEN {m} IS NULL THEN false WHEN lower({m}) IN ({trues}) THEN true "
+                f"WHEN lower({m}) IN ({falses}) THEN false END) AS {v}"
+            )
+            oks.append(f"({mq} IS NULL OR {v} IS NOT NULL)")
+        elif f.type == "enum":
+            choices = ", ".join(sql_text(c) for c in f.choices)
+            vals.append(f"lower({m}) AS {v}")
+            oks.append(
+                f"(CASE WHEN {v} IS NULL THEN {req} ELSE {v} IN ({choices}) END)"
+            )
+        elif f.type in ("id", "text"):
+            vals.append(f"{m} AS {v}")
+            if f.required:
+                oks.append(f"({v} IS NOT NULL)")
+        elif f.type == "timestamp":
+            # the per-field path's expression; a trailing Z cannot match its offset pattern,
+            # so those cells go straight to the cast
+            mq = qi("m__" + f.name)
+            vals.append(f"{m} AS {mq}")
+            vals.append(
+                f"(CASE WHEN {m} IS NULL THEN NULL WHEN ends_with({m}, 'Z') THEN "
+                f"TRY_CAST({m} AS TIMESTAMP) WHEN length({m}) > 10 AND "
+                f"regexp_matches({m}, '[+-][0-9]{{2}}(:?[0-9]{{2}})?$') THEN "
+                f"timezone('UTC', TRY_CAST({m} AS TIMESTAMPTZ)) ELSE TRY_CAST({m} AS TIMESTAMP) "
+                f"END) AS {v}"
+            )
+            oks.append(
+                f"(CASE WHEN {mq} IS NULL THEN {req} ELSE {v} IS NOT NULL AND "
+                f"{v} >= TIMESTAMP '{MIN_TIMESTAMP_UTC:%Y-%m-%d %H:%M:%S}' AND "
+                f"{v} <= TIMESTAMP '{limit:%Y-%m-%d %H:%M:%S}' + INTERVAL "
+                f"{int(FUTURE_SLACK_H * 3600)} SECOND END)"
+            )
+        else:  # pragma: no cover
+            raise AssertionError(f.type)
+    if kind.name == "exposures":
+        oks.append(
+            f"({qi('v__exposure_time_s')} IS NOT NULL OR {qi('v__exposure_mas')} IS NOT NULL)"
+        )
+    if kind.name == "downtime":
+        oks.append(f"COALESCE(NOT ({qi('v__end_utc')} < {qi('v__start_utc')}), true)")
+    if kind.name == "tubes":
+        oks.append(
+            f"COALESCE(NOT ({qi('v__removed_at_utc')} < {qi('v__installed_at_utc')}), true)"
+        )
+    ok = " AND ".join(oks) or "true"
+    inner = f"SELECT {line} AS _line0, {', '.join(vals)} FROM {typed_from} s {join}"
+    # the fluoroscopy lookup needs the converted system id: one more level
+    outs = ", ".join(f"{qi('v__' + f.name)} AS {qi(f.name)}" for f in kind.fields)
+    return (
+        f"SELECT CASE WHEN {ok} THEN _line0 ELSE error({sql_text(FAST_MISS)}) END AS _line, "
+        f"{outs} FROM ({inner}) t"
     )
