@@ -124,6 +124,85 @@ def _run(tasks: list[tuple], params: HealthParams) -> list[dict[str, Any]]:
         return list(pool.map(analyse_tube_task, tasks, chunksize=chunk))
 
 
+#: Tubes per chunk of :func:`analyse_fleet`: the daily statistics of one chunk are queried,
+#: analysed and dropped before the next (peak memory bounded by the chunk, not the fleet).
+CHUNK_TUBES = 200
+
+#: Result keys the fleet step needs from each tube (the rest is not kept).
+_KEEP = ("summary", "states", "drift", "diameter", "changepoints")
+
+
+def _compact(result: dict[str, Any]) -> dict[str, Any]:
+    """The parts of one tube's result the fleet step uses (per-tube projections are redone)."""
+    return {k: result[k] for k in _KEEP}
+
+
+def _cut_inputs(
+    daily: pd.DataFrame | None,
+    tubes: pd.DataFrame,
+    cut: pd.Timestamp,
+    calibrations: pd.DataFrame | None,
+    events: pd.DataFrame | None,
+) -> tuple[pd.DataFrame | None, pd.DataFrame, dict, dict]:
+    """Rows before ``cut`` (no copy when nothing is cut), known tubes, calibrations/events by tube."""
+    d = _before(daily, cut) if daily is not None else None
+    cal = calibrations if calibrations is not None else pd.DataFrame(columns=["tube_id", "focal_spot", "day"])
+    cal = cal[as_datetime(cal["day"]) < cut] if len(cal) else cal
+    ev = events if events is not None else pd.DataFrame(columns=["tube_id", "category", "day", "n_events"])
+    ev = ev[as_datetime(ev["day"]) < cut] if len(ev) else ev
+    known = tubes_as_of(tubes, cut)
+    cal_by = {k: g for k, g in cal.groupby("tube_id")} if len(cal) else {}
+    ev_by = {k: g for k, g in ev.groupby("tube_id")} if len(ev) else {}
+    return d, known, cal_by, ev_by
+
+
+def _before(daily: pd.DataFrame, cut: pd.Timestamp) -> pd.DataFrame:
+    day = as_datetime(daily["day"])
+    keep = (day < cut).to_numpy()
+    if keep.all():
+        return daily if day is daily["day"] else daily.assign(day=day)
+    return daily[keep].assign(day=day[keep])
+
+
+def _split_by_tube(d: pd.DataFrame) -> dict[str, pd.DataFrame]:
+    """Each tube's rows as a slice of the tube-sorted frame (views; rows keep their order)."""
+    if d.empty:
+        return {}
+    codes, uniques = pd.factorize(d["tube_id"], sort=True)
+    if codes.size > 1 and not (codes[1:] >= codes[:-1]).all():
+        order = np.argsort(codes, kind="stable")
+        d, codes = d.take(order), codes[order]
+    present = codes >= 0  # missing tube ids sort first as -1
+    first = int(np.argmax(present)) if present.any() else codes.size
+    bounds = np.searchsorted(codes, np.arange(len(uniques) + 1), side="left")
+    bounds[0] = max(bounds[0], first)
+    return {str(u): d.iloc[bounds[i]:bounds[i + 1]] for i, u in enumerate(uniques)}
+
+
+def _tasks(
+    by_tube: dict[str, pd.DataFrame],
+    known: pd.DataFrame,
+    cut: pd.Timestamp,
+    p: HealthParams,
+    cal_by: dict,
+    ev_by: dict,
+    metas: dict[str, dict[str, Any]],
+) -> list[tuple]:
+    tasks = []
+    for t in known.itertuples(index=False):
+        tid = str(t.tube_id)
+        if tid not in by_tube:
+            continue
+        removed = pd.notna(t.removed_at_utc)
+        t_as_of = pd.Timestamp(t.removed_at_utc).normalize() + pd.Timedelta(days=1) if removed else cut
+        meta = {"tube_id": tid, "system_id": t.system_id, "site": getattr(t, "site", None),
+                "installed_at_utc": t.installed_at_utc, "as_of": min(t_as_of, cut),
+                "removal_reason": t.removal_reason if removed else None}
+        metas[tid] = meta
+        tasks.append((by_tube[tid], meta, p, cal_by.get(tid), ev_by.get(tid)))
+    return tasks
+
+
 def analyse_frames(
     daily: pd.DataFrame,
     tubes: pd.DataFrame,
@@ -152,29 +231,24 @@ def analyse_frames(
     """
     p = params or HealthParams()
     cut = pd.Timestamp(as_of)
-    day = as_datetime(daily["day"])
-    d = daily[day < cut].assign(day=day[day < cut])
-    cal = calibrations if calibrations is not None else pd.DataFrame(columns=["tube_id", "focal_spot", "day"])
-    cal = cal[as_datetime(cal["day"]) < cut] if len(cal) else cal
-    ev = events if events is not None else pd.DataFrame(columns=["tube_id", "category", "day", "n_events"])
-    ev = ev[as_datetime(ev["day"]) < cut] if len(ev) else ev
-    known = tubes_as_of(tubes, cut)
-    by_tube = {k: g for k, g in d.groupby("tube_id", sort=True)}
-    cal_by = {k: g for k, g in cal.groupby("tube_id")} if len(cal) else {}
-    ev_by = {k: g for k, g in ev.groupby("tube_id")} if len(ev) else {}
-    tasks, metas = [], {}
-    for t in known.itertuples(index=False):
-        tid = str(t.tube_id)
-        if tid not in by_tube:
-            continue
-        removed = pd.notna(t.removed_at_utc)
-        t_as_of = pd.Timestamp(t.removed_at_utc).normalize() + pd.Timedelta(days=1) if removed else cut
-        meta = {"tube_id": tid, "system_id": t.system_id, "site": getattr(t, "site", None),
-                "installed_at_utc": t.installed_at_utc, "as_of": min(t_as_of, cut),
-                "removal_reason": t.removal_reason if removed else None}
-        metas[tid] = meta
-        tasks.append((by_tube[tid], meta, p, cal_by.get(tid), ev_by.get(tid)))
-    results = (runner or _run)(tasks, p)
+    d, known, cal_by, ev_by = _cut_inputs(daily, tubes, cut, calibrations, events)
+    metas: dict[str, dict[str, Any]] = {}
+    tasks = _tasks(_split_by_tube(d), known, cut, p, cal_by, ev_by, metas)
+    del d
+    results = [_compact(r) for r in (runner or _run)(tasks, p)]
+    del tasks
+    return _fleet_step(results, metas, known, cut, p, analysed_at)
+
+
+def _fleet_step(
+    results: list[dict[str, Any]],
+    metas: dict[str, dict[str, Any]],
+    known: pd.DataFrame,
+    cut: pd.Timestamp,
+    p: HealthParams,
+    analysed_at: datetime | None,
+) -> HealthResult:
+    """Empirical-Bayes prior, threshold, forecasts, levels and result tables from per-tube results."""
     # --- empirical-Bayes prior of the physics calibration factor k, per focal spot
     priors = fleet_k_priors([st for r in results for st in r["states"]], p)
     for r in results:
@@ -188,54 +262,54 @@ def analyse_frames(
         survivors=surviving_focal_losses(states, failed),
     )
     in_service = {tid for tid, m in metas.items() if m["removal_reason"] is None}
-    summaries, cdf_rows, proj_rows = [], [], []
+    # diameter series: total loss = loss since baseline + k x_b with the refitted k
+    shift = {(st["tube_id"], st["focal_spot"]): 100.0 * st["k"] * st["x_b"] for st in states}
+    summaries, served = [], []
     for r in results:
-        # diameter series: total loss = loss since baseline + k x_b with the refitted k
-        if len(r["diameter"]):
-            shift = {st["focal_spot"]: 100.0 * st["k"] * st["x_b"] for st in r["states"]}
-            dm = r["diameter"]
-            add = dm["focal_spot"].map(shift).to_numpy(float)
-            for col in ("diameter_loss_pct", "diameter_loss_pct_lo", "diameter_loss_pct_hi"):
-                dm[col] = dm["loss_since_baseline_pct" if col == "diameter_loss_pct" else
-                             col.replace("diameter_loss_pct", "loss_since_baseline_pct")] + add
-            r["diameter"] = dm[["tube_id", "focal_spot", "day", "diameter_loss_pct", "diameter_loss_pct_lo",
-                                "diameter_loss_pct_hi"]]
         if r["summary"].empty or str(r["summary"]["tube_id"].iloc[0]) not in in_service:
             continue
-        s = r["summary"].copy()
-        for i, st in enumerate(r["states"]):
-            fc = forecast_from_state(st, thr.mean, thr.sd, p, thr.df)
-            row = s.index[i]
-            for key in ("rul_days_p10", "rul_days_p50", "rul_days_p90", "rul_exposures_p10",
-                        "rul_exposures_p50", "rul_exposures_p90", "p_end_of_life_30d",
-                        "p_end_of_life_90d", "p_end_of_life_180d"):
-                s.loc[row, key] = fc[key]
-            s.loc[row, "diameter_loss_pct"] = 100.0 * st["loss_now"]
-            s.loc[row, "diameter_loss_pct_se"] = 100.0 * st["loss_se"]
-            s.loc[row, "wear_factor_k"] = st["k"]
-            s.loc[row, "wear_factor_k_se"] = float(np.sqrt(st["cov"][1, 1]))
-            s.loc[row, "wear_rate_pct_per_day"] = 100.0 * max(st["k"], 0.0) * st["rate_phys_per_day"]
-            w50, w180 = wiener_cross_check(st, thr.mean, p.max_rul_days)
-            s.loc[row, "rul_days_p50_wiener"] = w50
-            s.loc[row, "p_end_of_life_180d_wiener"] = w180
-            cdf, proj = fc["cdf"], fc["projection"]
-            cdf_rows.append(pd.DataFrame({"tube_id": st["tube_id"], "focal_spot": st["focal_spot"],
-                                          "horizon_days": np.asarray(CDF_HORIZONS_DAYS, int),
-                                          "p_end_of_life": cdf}))
-            proj_rows.append(pd.DataFrame({
-                "tube_id": st["tube_id"], "focal_spot": st["focal_spot"],
-                "day": cut + pd.to_timedelta(proj["offset_days"], unit="D"),
-                "diameter_loss_pct_p10": proj["diameter_loss_pct_p10"].to_numpy(),
-                "diameter_loss_pct_p50": proj["diameter_loss_pct_p50"].to_numpy(),
-                "diameter_loss_pct_p90": proj["diameter_loss_pct_p90"].to_numpy()}))
-        summaries.append(s)
-    summary = pd.concat(summaries, ignore_index=True) if summaries else pd.DataFrame(
-        columns=[c for c in (*SUMMARY_COLUMNS, *EXTRA_COLUMNS) if c not in ("health_level", "health_rank",
-                                                                          "reason", "signals", "as_of",
-                                                                          "analysed_at_utc", "code_version",
-                                                                          "threshold_pct", "threshold_sd_pct",
-                                                                          "threshold_source")]
-        + ["signature_level", "signature_reasons", "signals_list"])
+        summaries.append(r["summary"])
+        served.extend(r["states"])
+    fc_keys = ("rul_days_p10", "rul_days_p50", "rul_days_p90", "rul_exposures_p10",
+               "rul_exposures_p50", "rul_exposures_p90", "p_end_of_life_30d",
+               "p_end_of_life_90d", "p_end_of_life_180d")
+    cols: dict[str, list[float]] = {k: [] for k in (*fc_keys, "diameter_loss_pct", "diameter_loss_pct_se",
+                                                    "wear_factor_k", "wear_factor_k_se",
+                                                    "wear_rate_pct_per_day", "rul_days_p50_wiener",
+                                                    "p_end_of_life_180d_wiener")}
+    cdfs, pq10, pq50, pq90, ids, focals = [], [], [], [], [], []
+    proj_offsets = None
+    for st in served:
+        fc = forecast_from_state(st, thr.mean, thr.sd, p, thr.df)
+        for key in fc_keys:
+            cols[key].append(fc[key])
+        cols["diameter_loss_pct"].append(100.0 * st["loss_now"])
+        cols["diameter_loss_pct_se"].append(100.0 * st["loss_se"])
+        cols["wear_factor_k"].append(st["k"])
+        cols["wear_factor_k_se"].append(float(np.sqrt(st["cov"][1, 1])))
+        cols["wear_rate_pct_per_day"].append(100.0 * max(st["k"], 0.0) * st["rate_phys_per_day"])
+        w50, w180 = wiener_cross_check(st, thr.mean, p.max_rul_days)
+        cols["rul_days_p50_wiener"].append(w50)
+        cols["p_end_of_life_180d_wiener"].append(w180)
+        proj = fc["projection"]
+        if proj_offsets is None:
+            proj_offsets = proj["offset_days"]
+        cdfs.append(fc["cdf"])
+        pq10.append(proj["diameter_loss_pct_p10"].to_numpy())
+        pq50.append(proj["diameter_loss_pct_p50"].to_numpy())
+        pq90.append(proj["diameter_loss_pct_p90"].to_numpy())
+        ids.append(st["tube_id"])
+        focals.append(st["focal_spot"])
+    if summaries:
+        summary = pd.concat(summaries, ignore_index=True)
+        for key, values in cols.items():
+            summary[key] = np.asarray(values, float)
+    else:
+        summary = pd.DataFrame(
+            columns=[c for c in (*SUMMARY_COLUMNS, *EXTRA_COLUMNS) if c not in (
+                "health_level", "health_rank", "reason", "signals", "as_of", "analysed_at_utc",
+                "code_version", "threshold_pct", "threshold_sd_pct", "threshold_source")]
+            + ["signature_level", "signature_reasons", "signals_list"])
     summary = assign_levels(summary, thr.mean, p.min_history_days, p.max_rul_days)
     summary["as_of"] = cut
     summary["analysed_at_utc"] = pd.Timestamp(analysed_at) if analysed_at else pd.Timestamp.now("UTC").tz_localize(None)
@@ -243,24 +317,55 @@ def analyse_frames(
     summary["threshold_pct"] = 100.0 * thr.mean
     summary["threshold_sd_pct"] = 100.0 * thr.sd  # spread of the failure point [% of diameter]
     summary["threshold_source"] = thr.source
-    cols = [c for c in (*SUMMARY_COLUMNS, *EXTRA_COLUMNS) if c in summary.columns]
-    summary = summary[cols].sort_values(
+    cols_out = [c for c in (*SUMMARY_COLUMNS, *EXTRA_COLUMNS) if c in summary.columns]
+    summary = summary[cols_out].sort_values(
         ["health_rank", "p_end_of_life_180d", "rul_days_p50", "tube_id", "focal_spot"],
         ascending=[False, False, True, True, True], ignore_index=True)
 
+    if cdfs:
+        nh = len(CDF_HORIZONS_DAYS)
+        rul_cdf = pd.DataFrame({
+            "tube_id": np.repeat(np.asarray(ids, object), nh),
+            "focal_spot": np.repeat(np.asarray(focals, object), nh),
+            "horizon_days": np.tile(np.asarray(CDF_HORIZONS_DAYS, int), len(cdfs)),
+            "p_end_of_life": np.concatenate(cdfs)})
+        npj = len(proj_offsets)
+        days = (cut + pd.to_timedelta(proj_offsets, unit="D")).to_numpy()
+        projection = pd.DataFrame({
+            "tube_id": np.repeat(np.asarray(ids, object), npj),
+            "focal_spot": np.repeat(np.asarray(focals, object), npj),
+            "day": np.tile(days, len(cdfs)),
+            "diameter_loss_pct_p10": np.concatenate(pq10),
+            "diameter_loss_pct_p50": np.concatenate(pq50),
+            "diameter_loss_pct_p90": np.concatenate(pq90)})
+    else:
+        rul_cdf = pd.DataFrame(columns=["tube_id", "focal_spot", "horizon_days", "p_end_of_life"])
+        projection = pd.DataFrame(columns=["tube_id", "focal_spot", "day", "diameter_loss_pct_p10",
+                                           "diameter_loss_pct_p50", "diameter_loss_pct_p90"])
+
     def cat(key: str) -> pd.DataFrame:
         parts = [r[key] for r in results if len(r[key])]
-        return pd.concat(parts, ignore_index=True) if parts else results[0][key] if results else pd.DataFrame()
+        if not parts:
+            return results[0][key] if results else pd.DataFrame()
+        for r in results:  # release the per-tube frames once they are joined
+            r[key] = None
+        return pd.concat(parts, ignore_index=True)
 
+    diameter = cat("diameter")
+    if len(diameter) and "loss_since_baseline_pct" in diameter.columns:
+        keys = pd.MultiIndex.from_arrays([diameter["tube_id"], diameter["focal_spot"]])
+        add = pd.Series(shift, dtype=float).reindex(keys).to_numpy(float) if shift else np.full(len(diameter), np.nan)
+        for col in ("diameter_loss_pct", "diameter_loss_pct_lo", "diameter_loss_pct_hi"):
+            diameter[col] = diameter["loss_since_baseline_pct" if col == "diameter_loss_pct" else
+                                     col.replace("diameter_loss_pct", "loss_since_baseline_pct")] + add
+        diameter = diameter[["tube_id", "focal_spot", "day", "diameter_loss_pct", "diameter_loss_pct_lo",
+                             "diameter_loss_pct_hi"]]
     return HealthResult(
         summary=summary,
-        rul_cdf=pd.concat(cdf_rows, ignore_index=True) if cdf_rows else pd.DataFrame(
-            columns=["tube_id", "focal_spot", "horizon_days", "p_end_of_life"]),
+        rul_cdf=rul_cdf,
         drift=cat("drift"),
-        diameter=cat("diameter"),
-        projection=pd.concat(proj_rows, ignore_index=True) if proj_rows else pd.DataFrame(
-            columns=["tube_id", "focal_spot", "day", "diameter_loss_pct_p10", "diameter_loss_pct_p50",
-                     "diameter_loss_pct_p90"]),
+        diameter=diameter,
+        projection=projection,
         changepoints=cat("changepoints"),
         threshold=thr,
         as_of=cut.to_pydatetime(),
@@ -299,6 +404,11 @@ def analyse_fleet(
 ) -> HealthResult:
     """Analyse every tube in the store as of a date.
 
+    The same analysis as :func:`analyse_frames` on :func:`load_inputs`, run a chunk of
+    :data:`CHUNK_TUBES` tubes at a time: each chunk's daily statistics are aggregated in DuckDB,
+    handed to the process pool as per-tube slices and dropped, and only the compact per-tube
+    results are kept (the next chunk is queried while the pool works on the current one).
+
     Parameters
     ----------
     con
@@ -317,6 +427,29 @@ def analyse_fleet(
     """
     p = params or HealthParams()
     cut = effective_as_of(con, as_of)
-    inputs = load_inputs(con, cut, p)
-    return analyse_frames(inputs["daily"], inputs["tubes"], cut, p,
-                          calibrations=inputs["calibrations"], events=inputs["events"])
+    cut_ts = pd.Timestamp(cut)
+    _, known, cal_by, ev_by = _cut_inputs(
+        None, sql.load_tubes(con, None), cut_ts, sql.load_calibrations(con, cut), sql.load_events(con, cut))
+    ids = [str(t) for t in known["tube_id"]]
+    starts = list(range(0, max(len(ids), 1), CHUNK_TUBES))
+    metas: dict[str, dict[str, Any]] = {}
+
+    def chunk_tasks(i: int) -> list[tuple]:
+        lo = ids[i] if i > 0 else None
+        hi = ids[i + CHUNK_TUBES] if i + CHUNK_TUBES < len(ids) else None
+        d = _before(sql.load_daily_tubes(con, cut, lo, hi), cut_ts)
+        return _tasks(_split_by_tube(d), known.iloc[i:i + CHUNK_TUBES], cut_ts, p, cal_by, ev_by, metas)
+
+    results: list[dict[str, Any]] = []
+    if p.workers <= 1 or len(ids) < p.serial_below:
+        for i in starts:
+            results.extend(_compact(analyse_tube_task(t)) for t in chunk_tasks(i))
+    else:
+        with ProcessPoolExecutor(max_workers=p.workers) as pool:
+            tasks = chunk_tasks(starts[0])
+            for k in range(len(starts)):
+                running = pool.map(analyse_tube_task, tasks,
+                                   chunksize=max(1, len(tasks) // (p.workers * 8)))
+                tasks = chunk_tasks(starts[k + 1]) if k + 1 < len(starts) else []
+                results.extend(_compact(r) for r in running)
+    return _fleet_step(results, metas, known, cut_ts, p, None)

@@ -177,6 +177,34 @@ def load_daily(
     return con.execute(DAILY_SQL, [*_twice(as_of), float(ma_miss_tolerance)]).df()
 
 
+def load_daily_tubes(
+    con: duckdb.DuckDBPyConnection,
+    as_of: datetime | None,
+    first_tube: str | None,
+    end_tube: str | None,
+    ma_miss_tolerance: float = MA_MISS_TOLERANCE,
+) -> pd.DataFrame:
+    """:func:`load_daily` for the tubes with ``first_tube <= tube_id < end_tube`` (None: open end).
+
+    The same aggregation (``DAILY_SQL``) with a filter on the grouping key, which DuckDB pushes
+    down to the exposure scan: the fleet is aggregated a chunk of tubes at a time, so neither
+    the query nor the frame holds the whole fleet (the aggregate states of the medians are the
+    largest part of the query's memory).
+    """
+    cond, args = [], []
+    if first_tube is not None:
+        cond.append("tube_id >= ?")
+        args.append(str(first_tube))
+    if end_tube is not None:
+        cond.append("tube_id < ?")
+        args.append(str(end_tube))
+    if not cond:
+        return load_daily(con, as_of, ma_miss_tolerance)
+    query = (f"SELECT * FROM ({DAILY_SQL}) AS daily WHERE {' AND '.join(cond)} "
+             "ORDER BY tube_id, focal_spot, tube_current_ma, day")
+    return con.execute(query, [*_twice(as_of), float(ma_miss_tolerance), *args]).df()
+
+
 def load_calibrations(con: duckdb.DuckDBPyConnection, as_of: datetime | None = None) -> pd.DataFrame:
     """Per tube x focal spot x station x day statistics of calibration tables before ``as_of``."""
     return con.execute(CALIBRATION_SQL, _twice(as_of)).df()
