@@ -197,7 +197,9 @@ def _tasks(
         t_as_of = pd.Timestamp(t.removed_at_utc).normalize() + pd.Timedelta(days=1) if removed else cut
         meta = {"tube_id": tid, "system_id": t.system_id, "site": getattr(t, "site", None),
                 "installed_at_utc": t.installed_at_utc, "as_of": min(t_as_of, cut),
-                "removal_reason": t.removal_reason if removed else None}
+                "removal_reason": t.removal_reason if removed else None,
+                # the fleet step forecasts with the learned threshold; skip the per-tube one
+                "forecast": False}
         metas[tid] = meta
         tasks.append((by_tube[tid], meta, p, cal_by.get(tid), ev_by.get(tid)))
     return tasks

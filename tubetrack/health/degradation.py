@@ -131,28 +131,36 @@ def station_losses(
     DataFrame
         tube_current_ma, day, current_ratio, loss, loss_se (relative diameter loss [1]).
     """
-    c = corrected.copy()
-    base = c[c["day"] < baseline_end]
-    w = 1.0 / base["se_log"] ** 2
-    c0 = (base["log_i_corr"] * w).groupby(base["tube_current_ma"]).sum() / w.groupby(
-        base["tube_current_ma"]
-    ).sum()
-    c0_se = 1.0 / np.sqrt(w.groupby(base["tube_current_ma"]).sum())
-    nbase = base.groupby("tube_current_ma").size()
-    ok = nbase[nbase >= 3].index
-    c = c[c["tube_current_ma"].isin(ok)]
-    if c.empty:
+    ma = corrected["tube_current_ma"].to_numpy(float)
+    day = corrected["day"].to_numpy()
+    lc = corrected["log_i_corr"].to_numpy(float)
+    se = corrected["se_log"].to_numpy(float)
+    inb = day < np.datetime64(pd.Timestamp(baseline_end))
+    # per-station inverse-variance mean of the baseline (stations in ascending mA, rows in order)
+    stations, inv = np.unique(ma, return_inverse=True)
+    c0 = np.full(stations.size, np.nan)
+    c0_se = np.full(stations.size, np.nan)
+    nbase = np.zeros(stations.size, int)
+    for j in range(stations.size):
+        m = (inv == j) & inb
+        if m.any():
+            w = 1.0 / se[m] ** 2
+            c0[j] = (lc[m] * w).sum() / w.sum()
+            c0_se[j] = 1.0 / np.sqrt(w.sum())
+            nbase[j] = int(m.sum())
+    keep = nbase[inv] >= 3
+    if not keep.any():
         return pd.DataFrame(columns=["tube_current_ma", "day", "current_ratio", "loss", "loss_se"])
-    lc0 = c["tube_current_ma"].map(c0).to_numpy(float)
-    lse = c["tube_current_ma"].map(c0_se).to_numpy(float)
-    ratio = np.exp(c["log_i_corr"].to_numpy(float) - lc0)
-    ratio_se = ratio * np.sqrt(c["se_log"].to_numpy(float) ** 2 + lse**2)
-    dr, dr_se = phys.diameter_ratio(ratio, ratio_se, focal_spot, c["tube_current_ma"].to_numpy(float),
-                                    np.full(len(c), kv_ref))
+    ma_k = ma[keep]
+    lc0 = c0[inv[keep]]
+    lse = c0_se[inv[keep]]
+    ratio = np.exp(lc[keep] - lc0)
+    ratio_se = ratio * np.sqrt(se[keep] ** 2 + lse**2)
+    dr, dr_se = phys.diameter_ratio(ratio, ratio_se, focal_spot, ma_k, np.full(ma_k.size, kv_ref))
     return pd.DataFrame(
         {
-            "tube_current_ma": c["tube_current_ma"].to_numpy(float),
-            "day": c["day"].to_numpy(),
+            "tube_current_ma": ma_k,
+            "day": day[keep],
             "current_ratio": ratio,
             "loss": 1.0 - dr,
             "loss_se": np.maximum(dr_se, 1e-6),
@@ -189,15 +197,25 @@ def wear_index(daily_fs: pd.DataFrame, focal_spot: str, phys) -> pd.DataFrame:
     """
     if daily_fs.empty:
         return pd.DataFrame(columns=["day", "hot_s", "wear", "n_exposures", "x"])
-    hot = (daily_fs["exposure_time_sum_s"].fillna(0) + daily_fs["prep_time_sum_s"].fillna(0)).to_numpy(float)
+    hot = (np.nan_to_num(daily_fs["exposure_time_sum_s"].to_numpy(float), nan=0.0)
+           + np.nan_to_num(daily_fs["prep_time_sum_s"].to_numpy(float), nan=0.0))
     rate = phys.wear_rate_per_s(focal_spot, daily_fs["tube_current_ma"].to_numpy(float),
                                 daily_fs["tube_voltage_med_kv"].to_numpy(float))
     rate = np.where(np.isfinite(rate), rate, 0.0)
-    f = pd.DataFrame({"day": as_datetime(daily_fs["day"]).to_numpy(), "hot_s": hot, "wear": hot * rate,
-                      "n_exposures": daily_fs["n_exposures"].to_numpy(float)})
-    g = f.groupby("day", as_index=False)[["hot_s", "wear", "n_exposures"]].sum().sort_values("day")
-    g["x"] = g["wear"].cumsum()
-    return g.reset_index(drop=True)
+    days, inv = np.unique(as_datetime(daily_fs["day"]).to_numpy(), return_inverse=True)
+    wear = _group_sum(inv, hot * rate, days.size)
+    return pd.DataFrame({
+        "day": days,
+        "hot_s": _group_sum(inv, hot, days.size),
+        "wear": wear,
+        "n_exposures": _group_sum(inv, daily_fs["n_exposures"].to_numpy(float), days.size),
+        "x": np.cumsum(wear),
+    })
+
+
+def _group_sum(inv: np.ndarray, values: np.ndarray, n: int) -> np.ndarray:
+    """Sum of ``values`` per group (rows in order), as ``np.bincount`` (a few stations per day)."""
+    return np.bincount(inv, weights=values, minlength=n)
 
 
 @dataclass(frozen=True)

@@ -149,35 +149,59 @@ def normalise(daily: pd.DataFrame, model: KvModel) -> pd.DataFrame:
         log_i_norm [ln A], filament_current_norm_a [A], se_log [1] (standard error of
         ``log_i_norm``), in_baseline (bool).
     """
-    d = daily[(daily["n_current"] > 0) & (daily["filament_current_med_a"] > 0)]
-    if d.empty:
+    cur = daily["n_current"].to_numpy()
+    med = daily["filament_current_med_a"].to_numpy(float)
+    keep = (cur > 0) & (med > 0)
+    if not keep.any():
         return pd.DataFrame(columns=["tube_current_ma", "day", "t_days", "n_current", "log_i_norm",
                                      "filament_current_norm_a", "se_log", "in_baseline"])
-    log_med = np.log(d["filament_current_med_a"].to_numpy(float))
-    kv = d["tube_voltage_med_kv"].to_numpy(float)
+    med = med[keep]
+    log_med = np.log(med)
+    kv = daily["tube_voltage_med_kv"].to_numpy(float)[keep]
     y = log_med - model.slope_per_kv * (kv - model.kv_ref)
-    rel_iqr = (d["filament_current_q3_a"] - d["filament_current_q1_a"]).to_numpy(float) / d[
-        "filament_current_med_a"
-    ].to_numpy(float)
-    n = d["n_current"].to_numpy(float)
-    out = pd.DataFrame(
+    rel_iqr = (daily["filament_current_q3_a"].to_numpy(float)[keep]
+               - daily["filament_current_q1_a"].to_numpy(float)[keep]) / med
+    n = cur[keep].astype(float)
+    ma = daily["tube_current_ma"].to_numpy(float)[keep]
+    day = as_datetime(daily["day"]).to_numpy()[keep]
+    rel_sigma = np.where(n >= 4, rel_iqr / NORMAL_IQR, np.nan)
+    # pooled robust sigma per station (median of daily estimates); fall back to day-to-day scatter
+    # (each station's rows in their given order, as a pandas groupby sees them)
+    order = np.argsort(ma, kind="stable")
+    ma_o = ma[order]
+    cuts = np.flatnonzero(ma_o[1:] != ma_o[:-1]) + 1
+    sig = np.empty(ma.size)
+    diff_sig = np.empty(ma.size)
+    for rows in np.split(order, cuts):
+        rs = rel_sigma[rows]
+        rs = rs[~np.isnan(rs)]
+        sig[rows] = np.median(rs) if rs.size else np.nan
+        diff_sig[rows] = _diff_sigma_values(y[rows])
+    sigma = np.where(np.isnan(sig), diff_sig * np.sqrt(np.maximum(n, 1.0)), sig)
+    sigma = np.where(np.isnan(sigma), 0.01, sigma)
+    se_log = np.maximum(MEDIAN_SE_FACTOR * sigma / np.sqrt(np.maximum(n, 1.0)), 1e-5)
+    o = np.lexsort((day, ma))
+    day_o = day[o]
+    start = np.datetime64(pd.Timestamp(model.baseline_start))
+    return pd.DataFrame(
         {
-            "tube_current_ma": d["tube_current_ma"].to_numpy(float),
-            "day": as_datetime(d["day"]).to_numpy(),
-            "n_current": n,
-            "log_i_norm": y,
-            "rel_sigma": np.where(n >= 4, rel_iqr / NORMAL_IQR, np.nan),
+            "tube_current_ma": ma[o],
+            "day": day_o,
+            "n_current": n[o],
+            "log_i_norm": y[o],
+            "se_log": se_log[o],
+            "filament_current_norm_a": np.exp(y[o]),
+            "t_days": ((day_o - start) // np.timedelta64(1, "D")).astype(float),
+            "in_baseline": day_o < np.datetime64(pd.Timestamp(model.baseline_end)),
         }
     )
-    # pooled robust sigma per station (median of daily estimates); fall back to day-to-day scatter
-    sig = out.groupby("tube_current_ma")["rel_sigma"].transform("median")
-    diff_sig = out.groupby("tube_current_ma")["log_i_norm"].transform(_diff_sigma)
-    sigma = sig.fillna(diff_sig * np.sqrt(np.maximum(n, 1.0))).fillna(0.01)
-    out["se_log"] = np.maximum(MEDIAN_SE_FACTOR * sigma / np.sqrt(np.maximum(n, 1.0)), 1e-5)
-    out["filament_current_norm_a"] = np.exp(y)
-    out["t_days"] = (out["day"] - model.baseline_start).dt.days.astype(float)
-    out["in_baseline"] = out["day"] < model.baseline_end
-    return out.drop(columns="rel_sigma").sort_values(["tube_current_ma", "day"], ignore_index=True)
+
+
+def _diff_sigma_values(v: np.ndarray) -> float:
+    if v.size < 3:
+        return np.nan
+    dv = np.diff(v)
+    return float(1.4826 * np.median(np.abs(dv - np.median(dv))) / np.sqrt(2.0))
 
 
 def _diff_sigma(values: pd.Series) -> float:

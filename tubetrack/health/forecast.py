@@ -40,6 +40,10 @@ CDF_HORIZONS_DAYS = (30, 60, 90, 120, 150, 180, 210, 240, 270, 300, 330, 360, 36
 #: Step of the stored projection [days].
 PROJECTION_STEP_DAYS = 7
 PROJECTION_SPAN_DAYS = 365
+#: Remaining-life keys of :func:`forecast_from_state` copied into the per-tube summary.
+_FORECAST_KEYS = ("rul_days_p10", "rul_days_p50", "rul_days_p90", "rul_exposures_p10",
+                  "rul_exposures_p50", "rul_exposures_p90", "p_end_of_life_30d",
+                  "p_end_of_life_90d", "p_end_of_life_180d")
 #: Smallest physics calibration factor a draw may take (wear cannot run backwards).
 MIN_K = 0.05
 
@@ -175,6 +179,7 @@ def analyse_tube(
     calibrations: pd.DataFrame | None = None,
     events: pd.DataFrame | None = None,
     physics=None,
+    forecast: bool = True,
 ) -> dict[str, Any]:
     """Analyse one tube: everything from its daily statistics to its forecast.
 
@@ -191,6 +196,10 @@ def analyse_tube(
         This tube's rows of ``sql.CALIBRATION_SQL`` / ``sql.EVENTS_SQL``.
     physics
         Physics adapter (default :func:`degradation.default_physics`).
+    forecast
+        Forecast with the configured threshold (``False``: the remaining-life columns are NaN
+        and ``projections``/``cdfs`` hold None; the fleet step forecasts every state again with
+        the learned threshold, so it skips this one).
 
     Returns
     -------
@@ -349,7 +358,8 @@ def analyse_tube(
                  "flat_k": float(flat_beta[1]) if fit.n_days >= 3 else float("nan"),
                  "flat_k_se": float(np.sqrt(flat_cov[1, 1])) if fit.n_days >= 3 else float("nan"),
                  "wiener_mu": float("nan"), "wiener_sigma": float("nan")}
-        fc = forecast_from_state(state, p.eol_diameter_loss, p.eol_diameter_loss_sd, p)
+        fc = forecast_from_state(state, p.eol_diameter_loss, p.eol_diameter_loss_sd, p) if forecast \
+            else dict.fromkeys(_FORECAST_KEYS, float("nan"))
         # --- Wiener / inverse-Gaussian cross-check on weekly means of the loss index
         wien_p50, wien_p180 = float("nan"), float("nan")
         if len(comb) >= 10:
@@ -408,8 +418,8 @@ def analyse_tube(
             "exposures_per_day": epd,
         })
         states.append(state)
-        projections[focal] = fc["projection"]
-        cdfs[focal] = fc["cdf"]
+        projections[focal] = fc.get("projection")
+        cdfs[focal] = fc.get("cdf")
         if len(comb):
             z = 1.2815516  # standard normal 90 % quantile: lo/hi are the P10/P90 band
             diams.append(pd.DataFrame({
@@ -479,7 +489,8 @@ def wiener_cross_check(state: dict[str, Any], threshold: float, max_rul_days: fl
 def analyse_tube_task(args: tuple) -> dict[str, Any]:
     """Process-pool entry point: ``analyse_tube(*args)`` with keyword extras."""
     daily, meta, params, calib, events = args
-    return analyse_tube(daily, meta, params, calibrations=calib, events=events)
+    return analyse_tube(daily, meta, params, calibrations=calib, events=events,
+                        forecast=meta.get("forecast", True))
 
 
 def fit_state_for(fit: WearFit) -> dict[str, Any]:  # pragma: no cover - convenience

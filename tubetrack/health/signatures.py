@@ -167,19 +167,24 @@ def tube_signatures(
     """
     p = params or SignatureParams()
     out: dict = {"signals": [], "reasons": [], "level": 0}
-    days = as_datetime(daily["day"])
-    recent = days >= as_of - pd.Timedelta(days=p.recent_days)
-    n_all = float(daily["n_exposures"].sum())
-    n_recent = float(daily.loc[recent, "n_exposures"].sum())
-    arcs = float(daily["arc_sum"].sum())
+    days = as_datetime(daily["day"]).to_numpy()
+    recent = days >= np.datetime64(as_of - pd.Timedelta(days=p.recent_days))
+    n_exp = daily["n_exposures"].to_numpy(float)
+    arc = daily["arc_sum"].to_numpy(float)
+    n_all = float(n_exp.sum())
+    n_recent = float(n_exp[recent].sum())
+    arcs = float(arc.sum())
     out["arc_rate_per_1000"] = 1000.0 * arcs / n_all if n_all else float("nan")
     out["arc_rate_recent_per_1000"] = (
-        1000.0 * float(daily.loc[recent, "arc_sum"].sum()) / n_recent if n_recent else float("nan")
+        1000.0 * float(arc[recent].sum()) / n_recent if n_recent else float("nan")
     )
-    week = daily.assign(week=(days - days.min()).dt.days // 7).groupby("week")[
-        ["arc_sum", "n_exposures"]
-    ].sum()
-    trend = poisson_trend(week.index.to_numpy(float) * 7.0, week["arc_sum"], week["n_exposures"])
+    if days.size:
+        weeks, inv = np.unique((days - days.min()) // np.timedelta64(7, "D"), return_inverse=True)
+        week_arcs = np.bincount(inv, weights=arc, minlength=weeks.size)
+        week_n = np.bincount(inv, weights=n_exp, minlength=weeks.size)
+    else:
+        weeks, week_arcs, week_n = np.zeros(0), np.zeros(0), np.zeros(0)
+    trend = poisson_trend(weeks.astype(float) * 7.0, week_arcs, week_n)
     out["arc_trend_per_year"] = (
         float(np.expm1(min(trend.slope * 365.25, 50.0))) if np.isfinite(trend.slope) else float("nan")
     )
@@ -198,9 +203,9 @@ def tube_signatures(
             f"{p.recent_days} days"
         )
         out["level"] = max(out["level"], 1)
-    n_meas = float(daily.loc[recent, "n_measured"].sum())
+    n_meas = float(daily["n_measured"].to_numpy(float)[recent].sum())
     out["ma_miss_fraction"] = (
-        float(daily.loc[recent, "n_ma_miss"].sum()) / n_meas if n_meas else float("nan")
+        float(daily["n_ma_miss"].to_numpy(float)[recent].sum()) / n_meas if n_meas else float("nan")
     )
     if n_meas >= 50 and out["ma_miss_fraction"] > p.ma_miss_fraction_high:
         out["signals"].append("ma_regulation")
@@ -235,17 +240,29 @@ def _fmt_p(p: float) -> str:
     return "< 0.0001" if p < 1e-4 else f"= {p:.2g}"
 
 
-def _resistance_change_pct(daily: pd.DataFrame, days: pd.Series, recent: pd.Series) -> float:
+def _resistance_change_pct(daily: pd.DataFrame, days: np.ndarray, recent: np.ndarray) -> float:
     """Relative change of the median hot resistance, last window vs the first 30 days, per station."""
-    d = daily[daily["n_voltage"] > 0]
-    if d.empty:
+    have = daily["n_voltage"].to_numpy() > 0
+    if not have.any():
         return float("nan")
-    dd = as_datetime(d["day"])
-    first = dd < dd.min() + pd.Timedelta(days=30)
-    rec = recent.loc[d.index]
-    base = d[first].groupby("tube_current_ma")["filament_resistance_med_ohm"].median()
-    now = d[rec & ~first].groupby("tube_current_ma")["filament_resistance_med_ohm"].median()
-    both = base.index.intersection(now.index)
-    if len(both) == 0:
+    dd = days[have]
+    first = dd < dd.min() + np.timedelta64(30, "D")
+    rec = recent[have]
+    ma = daily["tube_current_ma"].to_numpy(float)[have]
+    res = daily["filament_resistance_med_ohm"].to_numpy(float)[have]
+    base = _station_medians(ma[first], res[first])
+    now = _station_medians(ma[rec & ~first], res[rec & ~first])
+    both = sorted(set(base) & set(now))
+    if not both:
         return float("nan")
-    return float(100.0 * np.median(now[both] / base[both] - 1.0))
+    return float(100.0 * np.median(np.array([now[k] / base[k] - 1.0 for k in both])))
+
+
+def _station_medians(ma: np.ndarray, values: np.ndarray) -> dict[float, float]:
+    """Median of ``values`` per station, NaN skipped (as a pandas groupby median)."""
+    out = {}
+    for k in np.unique(ma):
+        v = values[ma == k]
+        v = v[~np.isnan(v)]
+        out[float(k)] = float(np.median(v)) if v.size else float("nan")
+    return out
