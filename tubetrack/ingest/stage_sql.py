@@ -510,6 +510,10 @@ def build_fast_select(
     trimmed the same way); every check of :func:`build_stage` is folded into one boolean, and a row
     failing it raises ``FAST_MISS`` (``error()``), so the caller redoes the file on the per-field
     path, which names each reason. Columns: ``_line`` then the kind's fields.
+
+    Three levels: the cells (trimmed text, numbers as read), the converted values, then the check.
+    A range test also rejects NaN and infinities (DuckDB orders NaN above every number), and a
+    NULL anywhere in the check (a required value missing) fails it too.
     """
     from tubetrack.ingest.validate import (
         FLUORO_MAX_EXPOSURE_TIME_S,
@@ -518,18 +522,18 @@ def build_fast_select(
         RANGES,
     )
 
-    vals: list[str] = []
-    oks: list[str] = []
+    cells: list[str] = []  # level 1: m__ (trimmed text) / d__ (number as read)
+    vals: list[str] = []  # level 2: v__
+    oks: list[str] = []  # level 3: one boolean per check
     limit = now_utc.replace(microsecond=0)
     for f in kind.fields:
         cols = mapped.get(f.name)
         raw = f"s.{qi(cols[0])}" if cols else "CAST(NULL AS VARCHAR)"
         v = qi("v__" + f.name)
-        req = "false" if f.required else "true"
         if f.type in ("number", "integer"):
-            d = raw if cols else "CAST(NULL AS DOUBLE)"
+            d = qi("d__" + f.name)
+            cells.append(f"{raw if cols else 'CAST(NULL AS DOUBLE)'} AS {d}")
             rng = RANGES.get(f.name)
-            in_range = "true"
             if rng is not None:
                 high = repr(float(rng.high))
                 if f.name == "exposure_time_s" and kind.name == "exposures" and fluoro:
@@ -538,40 +542,34 @@ def build_fast_select(
                         f"systems WHERE modality = 'fluoroscopy'), false) THEN "
                         f"{float(FLUORO_MAX_EXPOSURE_TIME_S)!r} ELSE {high} END)"
                     )
-                in_range = f"{v} >= {float(rng.low)!r} AND {v} <= {high}"
+                good = f"{v} >= {float(rng.low)!r} AND {v} <= {high}"
+            else:
+                good = f"isfinite({v})"
             if f.type == "number":
                 vals.append(f"{d} AS {v}")
-                oks.append(
-                    f"(CASE WHEN {v} IS NULL THEN {req} ELSE isfinite({v}) AND {in_range} END)"
-                )
             else:
-                dq = qi("d__" + f.name)
-                vals.append(f"{d} AS {dq}")
                 vals.append(
                     f"(CASE WHEN isfinite({d}) AND {d} = round({d}) AND abs({d}) < 2147483647 "
                     f"THEN CAST({d} AS INTEGER) END) AS {v}"
                 )
-                oks.append(
-                    f"(CASE WHEN {dq} IS NULL THEN {req} ELSE {v} IS NOT NULL AND {in_range} END)"
-                )
+                good = f"{v} IS NOT NULL AND {good}"
+            oks.append(f"({good})" if f.required else f"({d} IS NULL OR ({good}))")
             continue
-        m = f"NULLIF(trim({raw}), '')"
+        m = qi("m__" + f.name)
+        cells.append(f"NULLIF(trim({raw}), '') AS {m}")
         if f.type == "bool":
             trues = ", ".join(sql_text(x) for x in _TRUE)
             falses = ", ".join(sql_text(x) for x in _FALSE if x)
-            vals.append(f"{m} AS {qi('m__' + f.name)}")
-            mq = qi("m__" + f.name)
             vals.append(
                 f"(CASE WHEN {m} IS NULL THEN false WHEN lower({m}) IN ({trues}) THEN true "
                 f"WHEN lower({m}) IN ({falses}) THEN false END) AS {v}"
             )
-            oks.append(f"({mq} IS NULL OR {v} IS NOT NULL)")
+            oks.append(f"({m} IS NULL OR {v} IS NOT NULL)")
         elif f.type == "enum":
             choices = ", ".join(sql_text(c) for c in f.choices)
             vals.append(f"lower({m}) AS {v}")
-            oks.append(
-                f"(CASE WHEN {v} IS NULL THEN {req} ELSE {v} IN ({choices}) END)"
-            )
+            good = f"{v} IN ({choices})"
+            oks.append(f"({good})" if f.required else f"({v} IS NULL OR {good})")
         elif f.type in ("id", "text"):
             vals.append(f"{m} AS {v}")
             if f.required:
@@ -579,21 +577,18 @@ def build_fast_select(
         elif f.type == "timestamp":
             # the per-field path's expression; a trailing Z cannot match its offset pattern,
             # so those cells go straight to the cast
-            mq = qi("m__" + f.name)
-            vals.append(f"{m} AS {mq}")
             vals.append(
-                f"(CASE WHEN {m} IS NULL THEN NULL WHEN ends_with({m}, 'Z') THEN "
-                f"TRY_CAST({m} AS TIMESTAMP) WHEN length({m}) > 10 AND "
-                f"regexp_matches({m}, '[+-][0-9]{{2}}(:?[0-9]{{2}})?$') THEN "
-                f"timezone('UTC', TRY_CAST({m} AS TIMESTAMPTZ)) ELSE TRY_CAST({m} AS TIMESTAMP) "
-                f"END) AS {v}"
+                f"(CASE WHEN ends_with({m}, 'Z') THEN TRY_CAST({m} AS TIMESTAMP) "
+                f"WHEN length({m}) > 10 AND regexp_matches({m}, '[+-][0-9]{{2}}(:?[0-9]{{2}})?$') "
+                f"THEN timezone('UTC', TRY_CAST({m} AS TIMESTAMPTZ)) "
+                f"ELSE TRY_CAST({m} AS TIMESTAMP) END) AS {v}"
             )
-            oks.append(
-                f"(CASE WHEN {mq} IS NULL THEN {req} ELSE {v} IS NOT NULL AND "
+            good = (
                 f"{v} >= TIMESTAMP '{MIN_TIMESTAMP_UTC:%Y-%m-%d %H:%M:%S}' AND "
                 f"{v} <= TIMESTAMP '{limit:%Y-%m-%d %H:%M:%S}' + INTERVAL "
-                f"{int(FUTURE_SLACK_H * 3600)} SECOND END)"
+                f"{int(FUTURE_SLACK_H * 3600)} SECOND"
             )
+            oks.append(f"({good})" if f.required else f"({m} IS NULL OR ({good}))")
         else:  # pragma: no cover
             raise AssertionError(f.type)
     if kind.name == "exposures":
@@ -607,10 +602,10 @@ def build_fast_select(
             f"COALESCE(NOT ({qi('v__removed_at_utc')} < {qi('v__installed_at_utc')}), true)"
         )
     ok = " AND ".join(oks) or "true"
-    inner = f"SELECT {line} AS _line0, {', '.join(vals)} FROM {typed_from} s {join}"
-    # the fluoroscopy lookup needs the converted system id: one more level
+    level1 = f"SELECT {line} AS _line0, {', '.join(cells)} FROM {typed_from} s {join}"
+    level2 = f"SELECT _line0, {', '.join(vals)}, * EXCLUDE (_line0) FROM ({level1}) c"
     outs = ", ".join(f"{qi('v__' + f.name)} AS {qi(f.name)}" for f in kind.fields)
     return (
         f"SELECT CASE WHEN {ok} THEN _line0 ELSE error({sql_text(FAST_MISS)}) END AS _line, "
-        f"{outs} FROM ({inner}) t"
+        f"{outs} FROM ({level2}) t"
     )
