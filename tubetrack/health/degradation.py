@@ -145,7 +145,7 @@ def station_losses(
         m = (inv == j) & inb
         if m.any():
             w = 1.0 / se[m] ** 2
-            c0[j] = (lc[m] * w).sum() / w.sum()
+            c0[j] = np.nansum(lc[m] * w) / w.sum()  # NaN skipped, as a pandas groupby sum
             c0_se[j] = 1.0 / np.sqrt(w.sum())
             nbase[j] = int(m.sum())
     keep = nbase[inv] >= 3

@@ -100,19 +100,26 @@ def fit_kv_model(
         t0 = pd.Timestamp(daily["day"].min()) if len(daily) else pd.Timestamp("1970-01-01")
         return KvModel(0.0, float(daily["tube_voltage_med_kv"].median()) if len(daily) else 70.0,
                        t0, t0, "none")
-    start = pd.Timestamp(have["day"].min())
+    day = as_datetime(have["day"]).to_numpy()
+    start = pd.Timestamp(day.min())
     end = start + pd.Timedelta(days=baseline_days)
-    base = have[have["day"] < end]
-    g = base.groupby("tube_current_ma")[["n_current", "sum_kv", "sum_kv2", "sum_log_i",
-                                         "sum_kv_log_i"]].sum()
-    n = g["n_current"].to_numpy(float)
-    sxx = g["sum_kv2"].to_numpy() - g["sum_kv"].to_numpy() ** 2 / n
-    sxy = g["sum_kv_log_i"].to_numpy() - g["sum_kv"].to_numpy() * g["sum_log_i"].to_numpy() / n
-    kv_ref = float(base["sum_kv"].sum() / base["n_current"].sum())
+    b = day < np.datetime64(end)
+    stations, inv = np.unique(have["tube_current_ma"].to_numpy(float)[b], return_inverse=True)
+
+    def station_sum(col: str) -> np.ndarray:
+        # NaN counts as 0, as in a pandas groupby sum
+        return np.bincount(inv, weights=np.nan_to_num(have[col].to_numpy(float)[b], nan=0.0),
+                           minlength=stations.size)
+
+    n = station_sum("n_current")
+    sum_kv = station_sum("sum_kv")
+    sxx = station_sum("sum_kv2") - sum_kv ** 2 / n
+    sxy = station_sum("sum_kv_log_i") - sum_kv * station_sum("sum_log_i") / n
+    kv_ref = float(np.nansum(have["sum_kv"].to_numpy(float)[b]) / have["n_current"].to_numpy(float)[b].sum())
     spread = float(np.sum(sxx) / max(np.sum(n), 1.0))
     if spread >= min_kv_spread_kv2 and np.sum(sxx) > 0:
         return KvModel(float(np.sum(sxy) / np.sum(sxx)), kv_ref, start, end, "regression")
-    slope = _physics_slope(focal_spot, float(np.average(g.index.to_numpy(float), weights=n)), kv_ref)
+    slope = _physics_slope(focal_spot, float(np.average(stations, weights=n)), kv_ref)
     if slope is None:
         return KvModel(0.0, kv_ref, start, end, "none")
     return KvModel(slope, kv_ref, start, end, "physics")

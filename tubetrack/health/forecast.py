@@ -224,25 +224,29 @@ def analyse_tube(
         kvm = drift.fit_kv_model(dfs, focal, baseline_days=p.baseline_days)
         norm = drift.normalise(dfs, kvm)
         # --- change points on the focal spot's combined series, shifts removed per station
-        base = norm.loc[norm["in_baseline"].to_numpy(bool)]
-        wb = 1.0 / base["se_log"].astype(float) ** 2
-        c0 = (base["log_i_norm"] * wb).groupby(
-            base["tube_current_ma"]
-        ).sum() / wb.groupby(base["tube_current_ma"]).sum()
-        resid = norm.assign(
-            r=norm["log_i_norm"] - norm["tube_current_ma"].map(c0),
-            w=1.0 / norm["se_log"] ** 2,
-        ).dropna(subset=["r"])
-        comb_r = (
-            resid.assign(wr=resid["w"] * resid["r"])
-            .groupby("t_days")[["wr", "w"]]
-            .sum()
-        )
+        # (numpy on the normalised rows, sorted by station then day; stations are contiguous)
+        n_ma = norm["tube_current_ma"].to_numpy(float)
+        n_day = norm["day"].to_numpy()
+        n_t = norm["t_days"].to_numpy(float)
+        n_y = norm["log_i_norm"].to_numpy(float)
+        n_se = norm["se_log"].to_numpy(float)
+        n_w = 1.0 / n_se**2
+        n_inb = norm["in_baseline"].to_numpy(bool)
+        cuts = np.flatnonzero(n_ma[1:] != n_ma[:-1]) + 1
+        bounds = [0, *cuts.tolist(), n_ma.size] if n_ma.size else [0]
+        c0 = np.full(n_ma.size, np.nan)  # each row's station baseline (inverse-variance mean)
+        for lo, hi in zip(bounds[:-1], bounds[1:], strict=False):
+            m = n_inb[lo:hi]
+            if m.any():
+                wb = n_w[lo:hi][m]
+                c0[lo:hi] = np.nansum(n_y[lo:hi][m] * wb) / wb.sum()  # NaN skipped, as pandas
+        r_all = n_y - c0
+        okr = ~np.isnan(r_all)
         shifts: list[tuple[float, float, float, str]] = []
-        if len(comb_r):
-            tt = comb_r.index.to_numpy(float)
-            ww = comb_r["w"].to_numpy(float)
-            yy = (comb_r["wr"] / comb_r["w"]).to_numpy()
+        if okr.any():
+            tt, inv_t = np.unique(n_t[okr], return_inverse=True)
+            ww = np.bincount(inv_t, weights=n_w[okr], minlength=tt.size)
+            yy = np.bincount(inv_t, weights=n_w[okr] * r_all[okr], minlength=tt.size) / ww
             idx = segments.detect_breaks(
                 tt, yy, penalty_c=p.penalty_c, min_size=p.min_segment_days
             )
@@ -258,38 +262,23 @@ def analyse_tube(
                 cands += [(float(x), "calibration") for x in ct]
             shifts = segments.level_shifts(tt, yy, ww, cands)
         break_t = [sh[0] for sh in shifts]
-        corr_parts, last_break = [], None
-        for ma, g in norm.groupby("tube_current_ma", sort=True):
-            g = g.sort_values("day")
-            tg = g["t_days"].to_numpy(float)
-            yg = g["log_i_norm"].to_numpy(float)
-            corrected, deltas = segments.remove_shifts(
-                tg, yg, 1.0 / g["se_log"].to_numpy(float) ** 2, break_t
-            )
-            seg = np.searchsorted(np.asarray(break_t), tg, side="right")
-            fitted = np.full(tg.size, np.nan)
+        last_break = None
+        corrected_all = np.empty(n_ma.size)
+        fitted_all = np.full(n_ma.size, np.nan)
+        seg_all = np.searchsorted(np.asarray(break_t), n_t, side="right")
+        for lo, hi in zip(bounds[:-1], bounds[1:], strict=False):
+            if hi <= lo:
+                continue
+            ma = n_ma[lo]
+            tg, yg, seg = n_t[lo:hi], n_y[lo:hi], seg_all[lo:hi]
+            corrected, deltas = segments.remove_shifts(tg, yg, n_w[lo:hi], break_t)
+            corrected_all[lo:hi] = corrected
+            fitted = fitted_all[lo:hi]
             for k in np.unique(seg):
                 m = seg == k
                 if m.sum() >= 2 and np.ptp(tg[m]) > 0:
                     b1, b0 = np.polyfit(tg[m], yg[m], 1)
                     fitted[m] = b0 + b1 * tg[m]
-            corr_parts.append(g.assign(log_i_corr=corrected))
-            drifts.append(
-                pd.DataFrame(
-                    {
-                        "tube_id": tube_id,
-                        "focal_spot": focal,
-                        "tube_current_ma": float(ma),
-                        "day": g["day"].to_numpy(),
-                        "filament_current_norm_a": g[
-                            "filament_current_norm_a"
-                        ].to_numpy(),
-                        "fitted_a": np.exp(fitted),
-                        "segment": seg,
-                        "series": "exposures",
-                    }
-                )
-            )
             for (tb, _d, _se, origin), delta in zip(shifts, deltas, strict=True):
                 if not np.isfinite(delta):
                     continue
@@ -305,6 +294,21 @@ def analyse_tube(
                         "jump_pct": 100.0 * float(np.expm1(delta)),
                     }
                 )
+        if n_ma.size:
+            drifts.append(
+                pd.DataFrame(
+                    {
+                        "tube_id": tube_id,
+                        "focal_spot": focal,
+                        "tube_current_ma": n_ma,
+                        "day": n_day,
+                        "filament_current_norm_a": norm["filament_current_norm_a"].to_numpy(),
+                        "fitted_a": np.exp(fitted_all),
+                        "segment": seg_all,
+                        "series": "exposures",
+                    }
+                )
+            )
         if break_t:
             last_break = kvm.baseline_start + pd.Timedelta(days=max(break_t))
         if len(calib):
@@ -312,8 +316,8 @@ def analyse_tube(
             if len(cn):
                 drifts.append(cn.assign(tube_id=tube_id, focal_spot=focal, fitted_a=np.nan, segment=-1,
                                         series="calibration"))
-        corr = pd.concat(corr_parts, ignore_index=True) if corr_parts else pd.DataFrame(
-            columns=["tube_current_ma", "day", "log_i_corr", "se_log"])
+        corr = pd.DataFrame({"tube_current_ma": n_ma, "day": n_day, "log_i_corr": corrected_all,
+                             "se_log": n_se})
         st = station_losses(corr, focal, kvm.kv_ref, kvm.baseline_end, phys) if len(corr) else pd.DataFrame(
             columns=["tube_current_ma", "day", "current_ratio", "loss", "loss_se"])
         comb = combine_stations(st)
