@@ -298,19 +298,27 @@ def fit_wear(
     as_of
         Analysis date (unused beyond bookkeeping) [day].
     """
-    wear_x = wear.set_index("day")["x"] + x_pre
+    w_day = as_datetime(wear["day"]).to_numpy() if len(wear) else np.zeros(0, "datetime64[us]")
+    w_x = wear["x"].to_numpy(float) + x_pre if len(wear) else np.zeros(0)
+    l_day = as_datetime(loss["day"]).to_numpy() if len(loss) else np.zeros(0, "datetime64[us]")
     x_b = float(x_pre)
     if len(loss):
-        first = pd.Timestamp(loss["day"].min())
-        before = wear_x[wear_x.index < first]
-        x_b = float(before.iloc[-1]) if len(before) else float(x_pre)
-    x_now = float(wear_x.iloc[-1]) if len(wear_x) else float(x_pre)
+        first = l_day.min()
+        before = w_x[w_day < first]
+        x_b = float(before[-1]) if before.size else float(x_pre)
+    x_now = float(w_x[-1]) if w_x.size else float(x_pre)
     prior_prec = np.diag([1.0 / OFFSET_PRIOR_SD**2, 1.0 / prior_k_sd**2])
     prior_mean = np.array([0.0, prior_k_mean])
-    d = loss if fit_from is None else loss[loss["day"] >= fit_from]
-    x = d["day"].map(wear_x).to_numpy(float) - x_b if len(d) else np.zeros(0)
-    y = d["loss"].to_numpy(float) if len(d) else np.zeros(0)
-    se = d["loss_se"].to_numpy(float) if len(d) else np.zeros(0)
+    sel = np.ones(l_day.size, bool) if fit_from is None else l_day >= np.datetime64(pd.Timestamp(fit_from))
+    if sel.any():
+        # the wear index on each loss day (days of ``wear`` are unique and sorted); NaN where absent
+        pos = np.minimum(np.searchsorted(w_day, l_day[sel]), max(w_day.size - 1, 0))
+        hit = (w_day[pos] == l_day[sel]) if w_day.size else np.zeros(int(sel.sum()), bool)
+        x = np.where(hit, w_x[pos] if w_day.size else np.nan, np.nan) - x_b
+        y = loss["loss"].to_numpy(float)[sel]
+        se = loss["loss_se"].to_numpy(float)[sel]
+    else:
+        x, y, se = np.zeros(0), np.zeros(0), np.zeros(0)
     ok = np.isfinite(x) & np.isfinite(y) & np.isfinite(se) & (se > 0)
     x, y, se = x[ok], y[ok], se[ok]
     dispersion = 1.0
@@ -326,7 +334,7 @@ def fit_wear(
     else:
         A, b = np.zeros((2, 2)), np.zeros(2)
     beta, cov = posterior(A, b, prior_k_mean, prior_k_sd)
-    span = float((pd.Timestamp(loss["day"].max()) - pd.Timestamp(loss["day"].min())).days) if len(loss) else 0.0
+    span = float((pd.Timestamp(l_day.max()) - pd.Timestamp(l_day.min())).days) if len(loss) else 0.0
     return WearFit(float(beta[0]), float(beta[1]), cov, x_b, x_now, float(x_pre), float(x_pre_sd),
                    int(x.size), span, dispersion, A, b)
 
