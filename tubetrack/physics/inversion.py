@@ -174,6 +174,25 @@ def _fallback_temperature(spec: FilamentSpec, t0: Any, ma: Any, kv: Any) -> Any:
     return np.where(bad, t_fb, t0)
 
 
+def _baseline_temperature(spec: FilamentSpec, ma: Any, kv: Any) -> Any:
+    """T0 of every (mA, kV) point, with the fallback of :func:`_fallback_temperature`.
+
+    With a scalar spec the temperature depends on the (mA, kV) pair only, and a tube's series
+    repeats a few stations at one reference kV: the forward model runs once per distinct pair
+    and is broadcast back (the same element-wise computation, far fewer elements).
+    """
+    ma_a, kv_a = np.asarray(ma, dtype=float), np.asarray(kv, dtype=float)
+    scalar = all(np.ndim(getattr(spec, f)) == 0 for f in _SPEC_ARRAY_FIELDS)
+    if scalar and ma_a.ndim == 1 and ma_a.shape == kv_a.shape and ma_a.size > 16:
+        pairs, inv = np.unique(np.column_stack([ma_a, kv_a]), axis=0, return_inverse=True)
+        if pairs.shape[0] < ma_a.size // 4:
+            um, uk = pairs[:, 0].copy(), pairs[:, 1].copy()
+            t0 = _asarray(filament_temperature_for_tube_current_k(spec, um, uk, 1.0))
+            return np.asarray(_fallback_temperature(spec, t0, um, uk))[inv.ravel()]
+    t0 = _asarray(filament_temperature_for_tube_current_k(spec, ma, kv, 1.0))
+    return _fallback_temperature(spec, t0, ma, kv)
+
+
 def _solve_ratio(
     spec: FilamentSpec, q: Any, ma: Any, kv: Any, signal: str = "current"
 ) -> tuple[Any, Any]:
@@ -185,8 +204,7 @@ def _solve_ratio(
     Fixed-slope Newton in ln r (slope from a central difference at r = 1), then an exact polish.
     """
     power, h_of = _SIGNALS[signal]
-    t0 = _asarray(filament_temperature_for_tube_current_k(spec, ma, kv, 1.0))
-    t0 = _fallback_temperature(spec, t0, ma, kv)
+    t0 = _baseline_temperature(spec, ma, kv)
     a = spec.emitting_area_diameter_exponent
     b = spec.work_function_ev / BOLTZMANN_EV_K
     # ln h(T) near T0 as a quadratic from three grid lookups (h is smooth; |T - T0| < 50 K for
@@ -297,6 +315,20 @@ def invert_current_ratio(
     """
     import pandas as pd
 
+    return pd.DataFrame(
+        _invert_arrays(current_ratio, spec, tube_current_ma, tube_voltage_kv, current_ratio_se, signal)
+    )
+
+
+def _invert_arrays(
+    current_ratio: ArrayLike,
+    spec: FilamentSpec,
+    tube_current_ma: ArrayLike,
+    tube_voltage_kv: ArrayLike,
+    current_ratio_se: ArrayLike | None,
+    signal: str,
+) -> dict[str, np.ndarray]:
+    """The columns of :func:`invert_current_ratio` as flat arrays (no DataFrame)."""
     shape = _result_shape(
         spec, current_ratio, tube_current_ma, tube_voltage_kv, current_ratio_se
     )
@@ -337,7 +369,7 @@ def invert_current_ratio(
     with np.errstate(divide="ignore", invalid="ignore"):
         se_meas = r * se_q / (q * np.abs(n))
     se = np.sqrt(se_meas**2 + se_model**2)
-    return pd.DataFrame(
+    return (
         {
             "diameter_ratio": r,
             "diameter_ratio_se": se,
@@ -417,12 +449,15 @@ def _diameter_ratio_arrays(
     signal: str,
 ) -> tuple[Any, Any]:
     """:func:`invert_current_ratio` reshaped to the broadcast input shape (0-d -> scalars)."""
-    frame = invert_current_ratio(
-        ratio, spec, tube_current_ma, tube_voltage_kv, ratio_se, signal=signal
-    )
+    if signal not in _SIGNALS:
+        raise InputError(
+            f"signal is {signal!r}; expected one of {sorted(_SIGNALS)} (the logged quantity "
+            "the ratio is of)."
+        )
+    cols = _invert_arrays(ratio, spec, tube_current_ma, tube_voltage_kv, ratio_se, signal)
     shape = _result_shape(spec, ratio, tube_current_ma, tube_voltage_kv, ratio_se)
-    r = frame["diameter_ratio"].to_numpy().reshape(shape)
-    se = frame["diameter_ratio_se"].to_numpy().reshape(shape)
+    r = np.asarray(cols["diameter_ratio"], dtype=float).reshape(shape)
+    se = np.asarray(cols["diameter_ratio_se"], dtype=float).reshape(shape)
     if r.ndim == 0:
         return r[()], se[()]
     return r, se
