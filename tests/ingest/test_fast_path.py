@@ -241,3 +241,111 @@ def test_bad_row_after_many_rows_rolls_back_the_typed_insert(tmp_path, monkeypat
     assert (rep.rows_read, rep.rows_accepted, rep.rows_rejected) == (150000, 149999, 1)
     assert con.execute("SELECT count(*) FROM exposures").fetchone()[0] == 149999
     assert [(r[0], r[1]) for r in rejects(con)] == [(150001, "tube_voltage_kv")]
+
+
+# ---- several files in one scan (engine.ingest_batch) -----------------------------------------
+
+
+def _run_batch(folder, monkeypatch, batch: bool):
+    from tubetrack.ingest import pipeline
+
+    taken: list[int] = []
+    real = pipeline.ingest_batch
+
+    def spy(con, items, **kw):
+        reps, tried = real(con, items, **kw) if batch else ([], 0)
+        taken.append(len(reps))
+        return reps, tried
+
+    with monkeypatch.context() as m:
+        m.setattr(pipeline, "ingest_batch", spy)
+        con = store.connect(":memory:")
+        reports = list(ingest_paths(con, [folder], now_utc=NOW).reports)
+        reports += ingest_paths(con, [folder], now_utc=NOW).reports  # a re-run: no-ops
+    assert all(r.reconciles for r in reports)
+    assert_reconciles(con)
+    return con, reports, taken
+
+
+def _same_batch(folder, monkeypatch) -> list[int]:
+    b_con, b_reps, taken = _run_batch(folder, monkeypatch, True)
+    s_con, s_reps, _ = _run_batch(folder, monkeypatch, False)
+    strip = lambda rows: [r.as_row() for r in rows]  # noqa: E731
+    assert strip(b_reps) == strip(s_reps)
+    assert _tables(b_con) == _tables(s_con)
+    return taken
+
+
+def _rows(start: int, n: int, system: str = "S1", kv: int = 80) -> list[str]:
+    return [
+        f"2024-03-01T08:{(start + i) // 60:02d}:{(start + i) % 60:02d}Z,{system},T1,small,"
+        f"{kv},200,,0.1,,4.1,,,"
+        for i in range(n)
+    ]
+
+
+def test_batch_equals_file_by_file_with_overlaps_and_repeats(tmp_path, monkeypatch):
+    d = tmp_path / "logs"
+    d.mkdir()
+    files = {
+        "exposures-1.csv": _rows(0, 5),
+        # overlaps file 1 (3 rows) and repeats a key within itself
+        "exposures-2.csv": _rows(2, 5, kv=81) + _rows(6, 1, kv=82),
+        "exposures-3.csv": [],  # header only
+        "exposures-4.csv": _rows(0, 3, system="S2") + _rows(4, 2, kv=83),
+        # same bytes as file 1 under another name: already ingested
+        "exposures-5.csv": _rows(0, 5),
+        "exposures-6.csv": _rows(40, 2, system="S3"),
+    }
+    for name, rows in files.items():
+        _write(d, name, H + "\n" + "".join(r + "\n" for r in rows))
+    taken = _same_batch(d, monkeypatch)
+    assert taken[0] == 4  # files 1-4 in one scan; 5 is a repeat, then 6 alone
+    con, reps, _ = _run_batch(d, monkeypatch, True)
+    got = {
+        Path(r.path).name: (r.status, r.rows_read, r.rows_duplicate) for r in reps[:6]
+    }
+    assert got["exposures-2.csv"] == ("ingested", 6, 4)
+    assert got["exposures-4.csv"] == ("ingested", 5, 2)
+    assert got["exposures-5.csv"][0] == "already_ingested"
+    assert con.execute(
+        "SELECT source_line, tube_voltage_kv FROM exposures WHERE source_file LIKE "
+        "'%exposures-2.csv' ORDER BY source_line"
+    ).fetchall() == [(5, 81.0), (6, 81.0)]
+
+
+@pytest.mark.parametrize(
+    "odd",
+    [
+        "2024-03-01T09:00:00Z,S1,T1,small,5000,200,,0.1,,4.1,,,\n",  # a bad row
+        "2024-03-01T09:00:00Z,S1,T1,small,80,200,,0.1,,4.1,,,,9\n",  # malformed line
+        '2024-03-01T09:00:00Z,S1,"T1",small,80,200,,0.1,,4.1,,,\n',  # a quote
+        "\n2024-03-01T09:00:00Z,S1,T1,small,80,200,,0.1,,4.1,,,\n",  # a blank line
+    ],
+)
+def test_batch_with_an_odd_file_equals_file_by_file(tmp_path, monkeypatch, odd):
+    d = tmp_path / "logs"
+    d.mkdir()
+    for i in range(4):
+        text = H + "\n" + "".join(r + "\n" for r in _rows(10 * i, 3, system=f"S{i}"))
+        if i == 2:
+            text += odd
+        _write(d, f"exposures-{i}.csv", text)
+    _same_batch(d, monkeypatch)
+
+
+def test_batch_other_header_ends_the_run(tmp_path, monkeypatch):
+    d = tmp_path / "logs"
+    d.mkdir()
+    short = "timestamp_utc,system_id,focal_spot,tube_voltage_kv,tube_current_ma,exposure_mas,filament_current_a"
+    _write(d, "exposures-0.csv", H + "\n" + "\n".join(_rows(0, 3)) + "\n")
+    _write(d, "exposures-1.csv", H + "\n" + "\n".join(_rows(3, 3)) + "\n")
+    _write(
+        d,
+        "exposures-2.csv",
+        short + "\n2024-03-01T09:00:00Z,S1,small,80,200,20,4.1\n",
+    )
+    _write(d, "exposures-3.csv", H + "\n" + "\n".join(_rows(0, 3, system="S9")) + "\n")
+    _write(d, "exposures-4.csv", H + "\n" + "\n".join(_rows(3, 3, system="S9")) + "\n")
+    taken = _same_batch(d, monkeypatch)
+    assert taken[:3] == [2, 0, 2]  # 0-1 together, 2 alone (its header), 3-4 together

@@ -247,6 +247,7 @@ _TEMPS = (
     "_tt_good",
     "_tt_new",
     "_tt_existing",
+    "_tt_batch",
 )
 
 
@@ -814,3 +815,293 @@ def _fast_ingest(
         sha256=scan.sha256,
         file_id=int(row[0]),
     )
+
+
+# --------------------------------------------------------------------------------------------
+# several small files of one kind and header in one scan
+# --------------------------------------------------------------------------------------------
+
+#: Files larger than this are not batched (their own scan already amortises the fixed work).
+BATCH_MAX_BYTES = 64 << 20
+#: Most files in one batch (bounds the work redone file by file when one row is bad).
+BATCH_MAX_FILES = 64
+
+
+def ingest_batch(
+    con: duckdb.DuckDBPyConnection,
+    items: list[tuple[Path, str]],
+    *,
+    now_utc: datetime | None = None,
+) -> tuple[list[FileReport], int]:
+    """Ingest a leading run of ``items`` (path, shown) in one scan and one transaction.
+
+    For open-layout CSV files of one kind (by file name) and one header line: each file is
+    hashed as on the per-file path; the run stops before the first file that is empty, gzip,
+    has a blank line or a quote character (its record numbers would not follow from its line
+    count), a different header, content already ingested (or repeated in the run), or is large.
+    The run's files are read by one strict typed ``read_csv([...])`` straight into their table,
+    with the checks of :func:`build_fast_select`. Row counts are verified per file against its
+    line count; duplicates are removed as the per-file path would in this file order (a key
+    repeated within a file keeps its first line; a key already stored or in an earlier file of
+    the run is a duplicate). Each file gets its own ``ingest_files`` row and report.
+
+    Returns the reports of the files taken, in order, and how many files were tried. No
+    reports when fewer than two files qualify (tried = 0) or anything failed (bad row, malformed
+    line, a count that does not match; tried = the run's length): nothing is then written, and
+    the caller ingests those files one by one, which gives every reject.
+    """
+    import duckdb
+
+    now_utc = now_utc or utcnow()
+    started = utcnow()
+    if len(items) < 2:
+        return [], 0
+    kind_name = kind_from_name(items[0][0].name)
+    if kind_name is None or KINDS[kind_name].upsert:
+        return [], 0
+    kind = KINDS[kind_name]
+    scans: list[rd.FileScan] = []
+    header = None
+    for path, _shown in items[:BATCH_MAX_FILES]:
+        if kind_from_name(path.name) != kind_name or rd.base_suffix(path) != ".csv":
+            break
+        try:
+            if path.stat().st_size > BATCH_MAX_BYTES:
+                break
+            scan = rd.scan_file(path)
+        except OSError:
+            break
+        first = scan.head.split(b"\n", 1)[0]
+        if (
+            scan.size == 0
+            or scan.gzip
+            or scan.truncated
+            or scan.blank_lines
+            or scan.has_quote
+            or scan.lines < 1
+            or len(scan.head) >= 65536
+            and b"\n" not in scan.head
+            or rd.detect_format(path, scan.head) != "csv"
+            or header is not None
+            and first != header
+        ):
+            break
+        header = first
+        scans.append(scan)
+    shas = [s.sha256 for s in scans]
+    if len(set(shas)) < len(shas):
+        # the first repeat ends the run (it is "already ingested" after the first one)
+        seen: set[str] = set()
+        for i, sha in enumerate(shas):
+            if sha in seen:
+                scans = scans[:i]
+                break
+            seen.add(sha)
+    if len(scans) >= 2:
+        done = {
+            r[0]
+            for r in con.execute(
+                "SELECT DISTINCT sha256 FROM ingest_files WHERE status = ? AND profile IS NULL "
+                "AND list_contains(?, sha256)",
+                [STATUS_INGESTED, [s.sha256 for s in scans]],
+            ).fetchall()
+        }
+        for i, s in enumerate(scans):
+            if s.sha256 in done:
+                scans = scans[:i]
+                break
+    if len(scans) < 2:
+        return [], 0
+    items = items[: len(scans)]
+    p = Params()
+    try:
+        src = open_source(con, items[0][0], items[0][1], scans[0], None, p)
+        mapped, _constants, ignored = resolve_columns(
+            kind, src, None, items[0][1], items[0][0].name
+        )
+    except FileFailure:
+        return [], 0
+    counts = [
+        s.lines - 1 for s in scans
+    ]  # no blank lines and no quotes: one line, one row
+    offsets = [sum(counts[:i]) for i in range(len(counts))]
+    target = kind.table
+    _drop_temps(con)
+    con.execute("BEGIN TRANSACTION")
+    try:
+        con.execute(
+            "CREATE OR REPLACE TEMP TABLE _tt_batch (idx INTEGER, fname VARCHAR, shown VARCHAR, "
+            "off BIGINT, n BIGINT)"
+        )
+        con.executemany(
+            "INSERT INTO _tt_batch VALUES (?, ?, ?, ?, ?)",
+            [
+                [i, str(path), shown, offsets[i], counts[i]]
+                for i, (path, shown) in enumerate(items)
+            ],
+        )
+        typed_from = typed_csv_sql(
+            src, fast_types(kind, mapped), p, [path for path, _ in items]
+        )
+        before, n_fluoro = con.execute(
+            f"SELECT (SELECT max(rowid) FROM {target}), "
+            "(SELECT count(*) FROM systems WHERE modality = 'fluoroscopy')"
+        ).fetchone()
+        last = -1 if before is None else int(before)
+        sel = build_fast_select(
+            kind,
+            mapped,
+            typed_from,
+            "JOIN _tt_batch o ON o.fname = s._fname",
+            f"(s._rec - o.off + {src.header_lines})",
+            now_utc,
+            kind.name == "exposures" and bool(n_fluoro),
+            carry="o.shown",
+        )
+        cols = [f.name for f in kind.fields]
+        col_list = ", ".join(qi(c) for c in cols)
+        extra_cols, extra_vals = ", source_file", ", _file"
+        if kind.has_line:
+            extra_cols += ", source_line"
+            extra_vals += ", _line"
+        if kind.name == "exposures":
+            extra_cols += ", source_kind"
+            extra_vals += ", 'log'"
+        sql = (
+            f"INSERT INTO {target} ({col_list}{extra_cols}) SELECT {_derived_select(kind)}"
+            f"{extra_vals} FROM ({sel}) f"
+        )
+        n_all = int(con.execute(sql, _used(sql, p)).fetchone()[0])
+        # every file gave exactly its lines' rows, numbered 2..n+1 (the scan kept file order)
+        got = (
+            {
+                r[0]: (int(r[1]), r[2], r[3])
+                for r in con.execute(
+                    f"SELECT source_file, count(*), min(source_line), max(source_line) "
+                    f"FROM {target} WHERE rowid > {last} GROUP BY source_file"
+                ).fetchall()
+            }
+            if kind.has_line
+            else None
+        )
+        h = src.header_lines
+        if n_all != sum(counts) or got is None:
+            raise _BatchMiss
+        for (_path, shown), n in zip(items, counts, strict=True):
+            if n and got.get(shown) != (n, h + 1, h + n) or not n and shown in got:
+                raise _BatchMiss
+        new = f"rowid > {last}"
+        key_cols = ", ".join(qi(k) for k in kind.key)
+        dup_in: dict[str, int] = {}
+        dup_store: dict[str, int] = {}
+        has_rep = con.execute(
+            f"SELECT count(*) FROM (SELECT 1 FROM {target} WHERE {new} "
+            f"GROUP BY source_file, {key_cols} HAVING count(*) > 1)"
+        ).fetchone()[0]
+        if has_rep:
+            for (f,) in con.execute(
+                f"DELETE FROM {target} WHERE rowid IN (SELECT rowid FROM (SELECT rowid, "
+                f"row_number() OVER (PARTITION BY source_file, {key_cols} ORDER BY "
+                f"source_line) AS rk FROM {target} WHERE {new}) WHERE rk > 1) "
+                "RETURNING source_file"
+            ).fetchall():
+                dup_in[f] = dup_in.get(f, 0) + 1
+        # a key already stored, or in an earlier file of the run
+        tc = kind.time_column
+        prune = ""
+        if tc:
+            lo, hi = con.execute(
+                f"SELECT min({qi(tc)}), max({qi(tc)}) FROM {target} WHERE {new}"
+            ).fetchone()
+            if lo is not None:
+                prune = (
+                    f" AND e.{qi(tc)} BETWEEN TIMESTAMP '{lo:%Y-%m-%d %H:%M:%S.%f}' "
+                    f"AND TIMESTAMP '{hi:%Y-%m-%d %H:%M:%S.%f}'"
+                )
+        if "system_id" in kind.key:
+            prune += f" AND e.system_id IN (SELECT DISTINCT system_id FROM {target} WHERE {new})"
+        ekeys = ", ".join(f"e.{qi(k)}" for k in kind.key)
+        con.execute(
+            f"CREATE OR REPLACE TEMP TABLE _tt_existing AS SELECT {ekeys}, -1 AS _idx "
+            f"FROM {target} e WHERE e.rowid <= {last}{prune} UNION ALL SELECT {ekeys}, "
+            f"b.idx AS _idx FROM {target} e JOIN _tt_batch b ON b.shown = e.source_file "
+            f"WHERE e.{new}"
+        )
+        match = " AND ".join(
+            f"e.{qi(k)} IS NOT DISTINCT FROM g.{qi(k)}" for k in kind.key
+        )
+        for (f,) in con.execute(
+            f"DELETE FROM {target} WHERE rowid IN (SELECT g.rowid FROM {target} g JOIN "
+            f"_tt_batch b ON b.shown = g.source_file WHERE g.{new} AND EXISTS (SELECT 1 "
+            f"FROM _tt_existing e WHERE {match} AND e._idx < b.idx)) RETURNING source_file"
+        ).fetchall():
+            dup_store[f] = dup_store.get(f, 0) + 1
+        reports = []
+        finished = utcnow()
+        message = ""
+        if ignored:
+            message = f"ignored columns: {', '.join(ignored[:10])}" + (
+                " ..." if len(ignored) > 10 else ""
+            )
+        rows = []
+        for (_path, shown), scan, n in zip(items, scans, counts, strict=True):
+            dup = dup_in.get(shown, 0) + dup_store.get(shown, 0)
+            rows.append(
+                [
+                    shown,
+                    scan.sha256,
+                    kind.name,
+                    STATUS_INGESTED,
+                    started,
+                    n,
+                    n - dup,
+                    dup,
+                    finished,
+                ]
+            )
+        ids = []
+        for r in rows:
+            ids.append(
+                int(
+                    con.execute(
+                        "INSERT INTO ingest_files (path, sha256, table_kind, profile, status, "
+                        "started_at_utc, rows_read, rows_accepted, rows_rejected, "
+                        "rows_duplicate, finished_at_utc) VALUES (?, ?, ?, NULL, ?, ?, ?, ?, "
+                        "0, ?, ?) RETURNING file_id",
+                        r,
+                    ).fetchone()[0]
+                )
+            )
+        for r, fid in zip(rows, ids, strict=True):
+            msg = message
+            if r[5] == 0:
+                msg = (msg + "; " if msg else "") + "header only: no data rows"
+            reports.append(
+                FileReport(
+                    r[0],
+                    kind.name,
+                    None,
+                    STATUS_INGESTED,
+                    rows_read=r[5],
+                    rows_accepted=r[6],
+                    rows_rejected=0,
+                    rows_duplicate=r[7],
+                    message=msg,
+                    sha256=r[1],
+                    file_id=fid,
+                )
+            )
+    except (duckdb.Error, _BatchMiss):
+        con.execute("ROLLBACK")
+        _drop_temps(con)
+        return [], len(items)
+    except BaseException:
+        con.execute("ROLLBACK")
+        raise
+    con.execute("COMMIT")
+    _drop_temps(con)
+    return reports, len(items)
+
+
+class _BatchMiss(Exception):
+    """The batch does not hold as planned; its files go one by one."""

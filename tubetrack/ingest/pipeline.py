@@ -16,10 +16,10 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, Protocol
 
 from tubetrack.errors import InputError
-from tubetrack.ingest.engine import Preview, ingest_file
+from tubetrack.ingest.engine import Preview, ingest_batch, ingest_file
 from tubetrack.ingest.layout import KINDS, SKIP_NAME_PREFIXES, kind_from_name
 from tubetrack.ingest.profiles import Profile, folder_profiles, load_profile
-from tubetrack.ingest.reader import is_dicom, is_log_name
+from tubetrack.ingest.reader import base_suffix, is_dicom, is_log_name
 from tubetrack.ingest.report import (
     REPORT_COLUMNS,
     STATUS_ALREADY,
@@ -246,10 +246,35 @@ def ingest_paths(
     reports: list[FileReport] = []
     previews: list[tuple[str, Preview]] = []
     dicom_jobs: list[_Job] = []
-    for job in jobs:
+    no_batch_until = 0
+    skip_to = 0
+    for i, job in enumerate(jobs):
         if job.dicom:
             dicom_jobs.append(job)
             continue
+        if skip_to > i:
+            continue
+        if not dry_run and i >= no_batch_until and _batchable(job):
+            run = [job]
+            for nxt in jobs[i + 1 :]:
+                if not _batchable(nxt) or kind_from_name(
+                    nxt.path.name
+                ) != kind_from_name(job.path.name):
+                    break
+                run.append(nxt)
+            if len(run) >= 2:
+                taken, tried = ingest_batch(
+                    con, [(j.path, j.shown) for j in run], now_utc=now_utc
+                )
+                if taken:
+                    for rep in taken:
+                        _call(progress, "file_started", rep.path, _size(Path(rep.path)))
+                        reports.append(rep)
+                        _call(progress, "file_done", rep)
+                    skip_to = i + len(taken)
+                    continue
+                # a failed run is read file by file (each file names its own rejects)
+                no_batch_until = i + max(tried, 1)
         _call(progress, "file_started", job.shown, _size(job.path))
         if job.skip_reason:
             rep = FileReport(
@@ -273,6 +298,20 @@ def ingest_paths(
     if dicom_jobs:
         reports.extend(_ingest_dicom(con, dicom_jobs, dry_run, progress))
     return IngestSummary(tuple(reports), tuple(previews))
+
+
+def _batchable(job: _Job) -> bool:
+    """An open-layout ``.csv`` whose name gives a log kind: may share a scan with its neighbours
+    (:func:`tubetrack.ingest.engine.ingest_batch` checks the rest)."""
+    if job.dicom or job.skip_reason or job.profile is not None:
+        return False
+    k = kind_from_name(job.path.name)
+    return (
+        k is not None
+        and not KINDS[k].upsert
+        and base_suffix(job.path) == ".csv"
+        and not job.path.name.lower().endswith(".gz")
+    )
 
 
 def _ingest_dicom(

@@ -34,6 +34,7 @@ class FileScan:
     blank_lines: tuple[int, ...]  # 1-based numbers of empty lines
     head: bytes  # first bytes of the decompressed content
     data_bytes: int  # decompressed size
+    has_quote: bool = True  # a '"' somewhere (a quoted cell may span lines)
 
 
 def scan_file(path: Path) -> FileScan:
@@ -52,6 +53,7 @@ def scan_file(path: Path) -> FileScan:
         gz_error = ""
         data_bytes = 0
         last_byte = b""
+        quote = False
         chunk = first
         while chunk:
             h.update(chunk)
@@ -78,6 +80,7 @@ def scan_file(path: Path) -> FileScan:
                     for m in _BLANK.finditer(buf):
                         blanks.add(base_nl + buf.count(b"\n", 0, m.start() + 1) + 1)
                 nl_total += data.count(b"\n")
+                quote = quote or b'"' in data
                 tail = buf[-2:]
                 data_bytes += len(data)
                 last_byte = data[-1:]
@@ -97,6 +100,7 @@ def scan_file(path: Path) -> FileScan:
         blank_lines=tuple(sorted(blanks)),
         head=head,
         data_bytes=data_bytes,
+        has_quote=quote,
     )
 
 

@@ -157,21 +157,34 @@ def open_source(
     )
 
 
-def typed_csv_sql(src: Source, types: dict[str, str], p: Params) -> str:
+def typed_csv_sql(
+    src: Source,
+    types: dict[str, str],
+    p: Params,
+    paths: list[Path] | None = None,
+) -> str:
     """FROM item reading a CSV source with DuckDB types per column (``types``: file column ->
     SQL type, VARCHAR when absent), strictly: any malformed line or cell that does not convert
     raises instead of becoming a reject (the caller then takes the per-field path).
 
     ``p`` must be the :class:`Params` the source was opened with (its path and options are bound
-    there).
+    there). ``paths``: read these files (all with the source's header) instead, in this order,
+    with their path in column ``_fname`` and ``_rec`` counting across them.
     """
     assert src.fmt == "csv" and src.csv_path
     internal = {f"c{i}": types.get(c, "VARCHAR") for i, c in enumerate(src.columns)}
     opts = [*src.csv_opts, f"columns={p.add(internal)}", "ignore_errors=false"]
     renames = ", ".join(f"c{i} AS {qi(c)}" for i, c in enumerate(src.columns))
+    where = src.csv_path
+    extra = ""
+    if paths is not None:
+        # several files of one header in one scan; _fname tells which file a row came from
+        where = p.add([str(x) for x in paths])
+        opts.append("filename=true")
+        extra = ", filename AS _fname"
     return (
-        f"(SELECT row_number() OVER () AS _rec, {renames} FROM "
-        f"read_csv({src.csv_path}, {', '.join(opts)}))"
+        f"(SELECT row_number() OVER () AS _rec{extra}, {renames} FROM "
+        f"read_csv({where}, {', '.join(opts)}))"
     )
 
 

@@ -503,13 +503,15 @@ def build_fast_select(
     line: str,
     now_utc: datetime,
     fluoro: bool,
+    carry: str = "",
 ) -> str:
     """SELECT of the canonical values of an open-layout CSV read with :func:`fast_types`.
 
     The values are exactly those :func:`build_stage` gives (same conversions, the text cells
     trimmed the same way); every check of :func:`build_stage` is folded into one boolean, and a row
     failing it raises ``FAST_MISS`` (``error()``), so the caller redoes the file on the per-field
-    path, which names each reason. Columns: ``_line`` then the kind's fields.
+    path, which names each reason. Columns: ``_line`` then the kind's fields (then ``_file``, the
+    SQL expression ``carry``, when given).
 
     Three levels: the cells (trimmed text, numbers as read), the converted values, then the check.
     A range test also rejects NaN and infinities (DuckDB orders NaN above every number), and a
@@ -602,9 +604,13 @@ def build_fast_select(
             f"COALESCE(NOT ({qi('v__removed_at_utc')} < {qi('v__installed_at_utc')}), true)"
         )
     ok = " AND ".join(oks) or "true"
+    if carry:
+        cells.append(f"{carry} AS _file")
     level1 = f"SELECT {line} AS _line0, {', '.join(cells)} FROM {typed_from} s {join}"
     level2 = f"SELECT _line0, {', '.join(vals)}, * EXCLUDE (_line0) FROM ({level1}) c"
     outs = ", ".join(f"{qi('v__' + f.name)} AS {qi(f.name)}" for f in kind.fields)
+    if carry:
+        outs += ", _file"
     return (
         f"SELECT CASE WHEN {ok} THEN _line0 ELSE error({sql_text(FAST_MISS)}) END AS _line, "
         f"{outs} FROM ({level2}) t"
