@@ -219,7 +219,7 @@ def analyse_tube(
     """
     p = params or HealthParams()
     phys = physics or default_physics()
-    out = _empty_frames()
+    out: dict[str, Any] = {}
     tube_id = str(tube_meta["tube_id"])
     as_of = pd.Timestamp(tube_meta["as_of"])
     installed = pd.Timestamp(tube_meta["installed_at_utc"]).normalize()
@@ -334,15 +334,17 @@ def analyse_tube(
         # --- wear before the first logged day: first `recent_days` of workload x gap
         first_day = pd.Timestamp(dfs["day"].min())
         gap_days = max(0.0, float((first_day - installed).days))
-        early = wear[wear["day"] < first_day + pd.Timedelta(days=p.recent_days)]
+        w_day = wear["day"].to_numpy()
+        w_wear = wear["wear"].to_numpy(float)
+        early = w_wear[w_day < np.datetime64(first_day + pd.Timedelta(days=p.recent_days))]
         early_span = max(
             1.0,
             min(
-                float(p.recent_days), float((wear["day"].max() - first_day).days) + 1.0
+                float(p.recent_days), float((pd.Timestamp(w_day.max()) - first_day).days) + 1.0
             ),
         )
         x_pre = (
-            gap_days * float(early["wear"].sum()) / early_span if gap_days > 14 else 0.0
+            gap_days * float(early.sum()) / early_span if gap_days > 14 else 0.0
         )
         cv = workload_cv(wear, p.recent_days)
         x_pre_sd = cv * x_pre
@@ -355,10 +357,10 @@ def analyse_tube(
         loss_now, loss_se = fit.loss_now()
         # --- recent workload per calendar day
         recent_start = as_of - pd.Timedelta(days=p.recent_days)
-        rec = wear[wear["day"] >= recent_start]
+        rec = w_day >= np.datetime64(recent_start)
         span_rec = max(1.0, min(float(p.recent_days), float((as_of - first_day).days)))
-        rate_phys = float(rec["wear"].sum()) / span_rec
-        epd = float(rec["n_exposures"].sum()) / span_rec
+        rate_phys = float(w_wear[rec].sum()) / span_rec
+        epd = float(wear["n_exposures"].to_numpy(float)[rec].sum()) / span_rec
         flat_beta, flat_cov = posterior(fit.data_precision, fit.data_rhs, 1.0, 1e6)
         state = {"tube_id": tube_id, "focal_spot": focal, "a": fit.a, "k": fit.k, "cov": fit.cov,
                  "x_now": fit.x_now, "x_b": fit.x_b, "x_pre_sd": fit.x_pre_sd,
@@ -444,13 +446,11 @@ def analyse_tube(
                 "diameter_loss_pct_lo": 100 * (comb["loss"].to_numpy() + fit.k * fit.x_b - z * comb["loss_se"].to_numpy()),
                 "diameter_loss_pct_hi": 100 * (comb["loss"].to_numpy() + fit.k * fit.x_b + z * comb["loss_se"].to_numpy()),
             }))
+    empty = _empty_frames() if not (drifts and diams and cps) else {}  # only when one is needed
     out["summary"] = pd.DataFrame(rows)
-    if drifts:
-        out["drift"] = pd.concat(drifts, ignore_index=True)
-    if diams:
-        out["diameter"] = pd.concat(diams, ignore_index=True)
-    if cps:
-        out["changepoints"] = pd.DataFrame(cps)
+    out["drift"] = pd.concat(drifts, ignore_index=True) if drifts else empty["drift"]
+    out["diameter"] = pd.concat(diams, ignore_index=True) if diams else empty["diameter"]
+    out["changepoints"] = pd.DataFrame(cps) if cps else empty["changepoints"]
     out["states"] = states
     out["projections"] = projections
     out["cdfs"] = cdfs
