@@ -183,10 +183,12 @@ def _baseline_temperature(spec: FilamentSpec, ma: Any, kv: Any) -> Any:
     """
     ma_a, kv_a = np.asarray(ma, dtype=float), np.asarray(kv, dtype=float)
     scalar = all(np.ndim(getattr(spec, f)) == 0 for f in _SPEC_ARRAY_FIELDS)
-    if scalar and ma_a.ndim == 1 and ma_a.shape == kv_a.shape and ma_a.size > 16:
-        pairs, inv = np.unique(np.column_stack([ma_a, kv_a]), axis=0, return_inverse=True)
-        if pairs.shape[0] < ma_a.size // 4:
-            um, uk = pairs[:, 0].copy(), pairs[:, 1].copy()
+    if (scalar and ma_a.ndim == 1 and ma_a.shape == kv_a.shape and ma_a.size > 16
+            and np.isfinite(kv_a[0]) and np.all(kv_a == kv_a[0])):
+        # one kV (the health step inverts at the reference kV): distinct stations only
+        um, inv = np.unique(ma_a, return_inverse=True)
+        if um.size < ma_a.size // 4:
+            uk = np.full(um.size, kv_a[0])
             t0 = _asarray(filament_temperature_for_tube_current_k(spec, um, uk, 1.0))
             return np.asarray(_fallback_temperature(spec, t0, um, uk))[inv.ravel()]
     t0 = _asarray(filament_temperature_for_tube_current_k(spec, ma, kv, 1.0))
