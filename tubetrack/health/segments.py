@@ -4,8 +4,11 @@ Model: within a segment the kV-normalised ln(filament current) is a straight lin
 steady thinning); at a change point both level and slope may change (a recalibration, a sensor
 offset, an unrecorded tube swap, abrupt damage, a change of workload). The segmentation minimises
 the sum of squared residuals of the segment-wise least-squares lines plus a penalty per change
-point, solved exactly by PELT (Killick et al. 2012) as implemented in ``ruptures`` with a cost
-computed in O(1) per segment from prefix sums.
+point, solved exactly by PELT (Killick et al. 2012) with a cost computed in O(1) per segment from
+prefix sums. :func:`pelt` is a numpy transcription of ``ruptures.Pelt`` (every point a candidate,
+``jump=1``): the same recursion, pruning and tie-breaking, vectorised over the candidate set, so
+it returns ruptures' break points (tested) at a fraction of the cost of its per-candidate Python
+loop and dictionary copies. No weekly thinning of the candidates was needed.
 
 Penalty (a BIC-like rule, documented): ``pen = c * sigma^2 * ln(n)`` with sigma the robust noise
 scale of one observation (MAD of first differences / sqrt 2) and ``c = 3`` parameters per new
