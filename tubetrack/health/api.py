@@ -157,10 +157,11 @@ def _cut_inputs(
 
 
 def _before(daily: pd.DataFrame, cut: pd.Timestamp) -> pd.DataFrame:
+    converted = daily["day"].dtype.kind != "M"
     day = as_datetime(daily["day"])
     keep = (day < cut).to_numpy()
     if keep.all():
-        return daily if day is daily["day"] else daily.assign(day=day)
+        return daily.assign(day=day) if converted else daily  # no copy in the usual case
     return daily[keep].assign(day=day[keep])
 
 
