@@ -349,3 +349,14 @@ def test_batch_other_header_ends_the_run(tmp_path, monkeypatch):
     _write(d, "exposures-4.csv", H + "\n" + "\n".join(_rows(3, 3, system="S9")) + "\n")
     taken = _same_batch(d, monkeypatch)
     assert taken[:3] == [2, 0, 2]  # 0-1 together, 2 alone (its header), 3-4 together
+
+
+def test_batch_of_crlf_files_equals_file_by_file(tmp_path, monkeypatch):
+    d = tmp_path / "logs"
+    d.mkdir()
+    for i in range(3):
+        rows = _rows(10 * i, 3, system=f"S{i % 2}")
+        (d / f"exposures-{i}.csv").write_bytes(
+            (H + "\r\n" + "".join(r + "\r\n" for r in rows)).encode()
+        )
+    assert _same_batch(d, monkeypatch)[0] == 3
