@@ -136,6 +136,8 @@ def _json_default(value: Any) -> Any:
 def _clean(value: Any) -> Any:
     if isinstance(value, float) and (math.isnan(value) or math.isinf(value)):
         return None
+    if value is None or isinstance(value, str | int | float | bool):
+        return value
     try:
         import pandas as pd
 
@@ -187,15 +189,57 @@ def emit(
                 safe[col] = safe[col].map(csv_safe_cell)
         safe.to_csv(sys.stdout, index=False)
         return
+    view = frame if columns is None else frame[[c for c in columns if c in frame.columns]]
+    _print_table(list(view.columns), view.itertuples(index=False, name=None), title, float_digits)
+
+
+def emit_rows(
+    rows: list[dict[str, Any]],
+    all_columns: Iterable[str],
+    fmt: OutputFormat,
+    *,
+    title: str | None = None,
+    columns: Iterable[str] | None = None,
+    float_digits: int = 3,
+) -> None:
+    """:func:`emit` for plain rows of str/int/float/None values, without importing pandas.
+
+    For commands whose start-up matters (a one-day ingest); same JSON, CSV and table output as
+    :func:`emit` of the equivalent DataFrame.
+    """
+    cols = list(all_columns)
+    plain = [{c: _clean_plain(r.get(c)) for c in cols} for r in rows]
+    if fmt is OutputFormat.json:
+        sys.stdout.write(json.dumps(plain, default=_json_default, indent=1) + "\n")
+        return
+    if fmt is OutputFormat.csv:
+        import csv
+
+        w = csv.writer(sys.stdout, lineterminator="\n")
+        w.writerow(cols)
+        w.writerows([["" if r[c] is None else csv_safe_cell(r[c]) for c in cols] for r in plain])
+        return
+    shown = cols if columns is None else [c for c in columns if c in cols]
+    _print_table(shown, ([r[c] for c in shown] for r in plain), title, float_digits)
+
+
+def _clean_plain(value: Any) -> Any:
+    if isinstance(value, float) and (math.isnan(value) or math.isinf(value)):
+        return None
+    return value
+
+
+def _print_table(
+    cols: list[Any], rows: Iterable[Iterable[Any]], title: str | None, float_digits: int
+) -> None:
     from rich.console import Console
     from rich.table import Table
     from rich.text import Text
 
-    view = frame if columns is None else frame[[c for c in columns if c in frame.columns]]
     table = Table(title=title, show_lines=False, header_style="bold")
-    for col in view.columns:
+    for col in cols:
         table.add_column(str(col), overflow="fold")
-    for row in view.itertuples(index=False, name=None):
+    for row in rows:
         cells = []
         for v in row:
             v = _clean(v)

@@ -15,9 +15,11 @@ from tubetrack.cli.common import (
     OutputFormat,
     QuietOption,
     emit,
+    emit_rows,
     handle_errors,
     stderr,
 )
+from tubetrack.ingest.report import REPORT_COLUMNS
 
 if TYPE_CHECKING:  # pragma: no cover
     from tubetrack.ingest.pipeline import IngestSummary
@@ -195,26 +197,47 @@ def store_literal(text: str) -> str:
 _MAX_TABLE_FILES = 20
 
 
-def _by_folder(frame: Any) -> Any:
-    """Per-file ingest summary -> one row per (folder, kind, status) with summed counts."""
-    import pandas as pd
+_COUNTS = ("files", "rows_read", "rows_accepted", "rows_rejected", "rows_duplicate")
+_BY_FOLDER_COLUMNS = ("folder", "kind", "status", *_COUNTS)
 
-    grouped = frame.assign(
-        folder=frame["path"].map(lambda p: str(Path(p).parent)),
-        files=1,
-    )
-    counts = ["files", "rows_read", "rows_accepted", "rows_rejected", "rows_duplicate"]
-    out = grouped.groupby(["folder", "kind", "status"], dropna=False, sort=True)[
-        counts
-    ].sum()
-    return pd.DataFrame(out.reset_index())
+
+def _by_folder(rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """Per-file ingest rows -> one row per (folder, kind, status) with summed counts, sorted
+    (a missing kind last)."""
+    out: dict[tuple[str, Any, str], dict[str, Any]] = {}
+    for r in rows:
+        key = (str(Path(r["path"]).parent), r.get("kind"), r.get("status"))
+        acc = out.setdefault(key, {"folder": key[0], "kind": key[1], "status": key[2],
+                                   **dict.fromkeys(_COUNTS, 0)})
+        acc["files"] += 1
+        for c in _COUNTS[1:]:
+            acc[c] += int(r.get(c) or 0)
+
+    def order(k: tuple[str, Any, str]) -> tuple:
+        return (k[0], k[1] is None, k[1] or "", k[2] is None, k[2] or "")
+
+    return [out[k] for k in sorted(out, key=order)]
 
 
 def _emit_summary(
     result: IngestSummary, fmt: OutputFormat, quiet: bool, previews: bool = False
 ) -> None:
+    if not previews:
+        # plain rows: a one-day ingest should not pay for importing pandas
+        rows = [r.as_row() for r in result.reports]
+        if fmt is OutputFormat.table and len(rows) > _MAX_TABLE_FILES:
+            # Many files: one row per folder, kind and status keeps the terminal readable;
+            # json/csv still carry one row per file.
+            emit_rows(_by_folder(rows), _BY_FOLDER_COLUMNS, fmt,
+                      title=f"ingest ({len(rows)} files, by folder)")
+        else:
+            emit_rows(rows, REPORT_COLUMNS, fmt,
+                      title="ingest" if fmt is OutputFormat.table else None, columns=_TABLE_COLUMNS)
+        _report_messages(result, quiet, previews)
+        return
+    # dry run: the previews are DataFrames anyway
     frame = result.summary
-    if previews and fmt is OutputFormat.json:
+    if fmt is OutputFormat.json:
         import json
 
         from tubetrack.cli.common import _json_default, records
@@ -226,10 +249,6 @@ def _emit_summary(
             row["preview_rows"] = records(p.rows) if p is not None else []
             row["preview_rejects"] = records(p.rejects) if p is not None else []
         sys.stdout.write(json.dumps(rows, default=_json_default, indent=1) + "\n")
-    elif fmt is OutputFormat.table and len(frame) > _MAX_TABLE_FILES and not previews:
-        # Many files: one row per folder, kind and status keeps the terminal readable;
-        # json/csv still carry one row per file.
-        emit(_by_folder(frame), fmt, title=f"ingest ({len(frame)} files, by folder)")
     else:
         emit(
             frame,
@@ -237,11 +256,16 @@ def _emit_summary(
             title="ingest" if fmt is OutputFormat.table else None,
             columns=_TABLE_COLUMNS,
         )
-        if previews and fmt is OutputFormat.table:
+        if fmt is OutputFormat.table:
             for path, p in result.previews:
                 emit(p.rows, fmt, title=f"{path}: first canonical rows (UTC)")
                 if not p.rejects.empty:
                     emit(p.rejects, fmt, title=f"{path}: first rejects it would make")
+    _report_messages(result, quiet, previews)
+
+
+def _report_messages(result: IngestSummary, quiet: bool, previews: bool) -> None:
+    """Per-file errors and notes, then the one-line summary, on stderr."""
     for rep in result.reports:
         if rep.status == "failed":
             typer.echo(f"Error: {rep.message}", err=True)
