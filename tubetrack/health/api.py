@@ -132,9 +132,53 @@ CHUNK_TUBES = 200
 _KEEP = ("summary", "states", "drift", "diameter", "changepoints")
 
 
+#: Columns of the per-tube diameter frame kept until the fleet step (the total loss columns are
+#: recomputed there with the refitted k).
+_DIAMETER_KEEP = ("tube_id", "focal_spot", "day", "loss_since_baseline_pct",
+                  "loss_since_baseline_pct_lo", "loss_since_baseline_pct_hi")
+
+
+def _columns(frame: pd.DataFrame) -> dict[str, np.ndarray] | pd.DataFrame:
+    """A non-empty result frame as plain column arrays (no per-tube pandas overhead)."""
+    if not len(frame):
+        return frame
+    return {c: frame[c].to_numpy() for c in frame.columns}
+
+
 def _compact(result: dict[str, Any]) -> dict[str, Any]:
-    """The parts of one tube's result the fleet step uses (per-tube projections are redone)."""
-    return {k: result[k] for k in _KEEP}
+    """The parts of one tube's result the fleet step uses (per-tube projections are redone).
+
+    The drift, diameter and change-point frames are kept as column arrays and joined column by
+    column at the end (:func:`_join`), so the fleet's result tables are built without holding
+    every tube's frames and their concatenation at once.
+    """
+    out = {k: result[k] for k in _KEEP}
+    dm = out["diameter"]
+    if len(dm) and "loss_since_baseline_pct" in dm.columns:
+        out["diameter"] = dm[list(_DIAMETER_KEEP)]
+    for key in ("drift", "diameter", "changepoints"):
+        out[key] = _columns(out[key])
+    return out
+
+
+def _join(results: list[dict[str, Any]], key: str) -> tuple[dict[str, np.ndarray], pd.DataFrame | None]:
+    """Concatenate one result table's column arrays over the tubes, releasing the parts.
+
+    Returns the columns (in the order ``pd.concat`` would give: the first non-empty part's) and,
+    when no tube has rows, the first tube's empty frame (or None without results).
+    """
+    parts = [r[key] for r in results if isinstance(r[key], dict)]
+    if not parts:
+        return {}, (results[0][key] if results else None)
+    names = list(parts[0])
+    for part in parts[1:]:
+        names += [c for c in part if c not in names]
+    for r in results:
+        r[key] = None
+    out = {}
+    for c in names:
+        out[c] = np.concatenate([part.pop(c) for part in parts])
+    return out, None
 
 
 def _cut_inputs(
@@ -347,22 +391,24 @@ def _fleet_step(
                                            "diameter_loss_pct_p50", "diameter_loss_pct_p90"])
 
     def cat(key: str) -> pd.DataFrame:
-        parts = [r[key] for r in results if len(r[key])]
-        if not parts:
-            return results[0][key] if results else pd.DataFrame()
-        for r in results:  # release the per-tube frames once they are joined
-            r[key] = None
-        return pd.concat(parts, ignore_index=True)
+        cols, empty = _join(results, key)
+        if not cols:
+            return empty if empty is not None else pd.DataFrame()
+        return pd.DataFrame(cols, copy=False)
 
-    diameter = cat("diameter")
-    if len(diameter) and "loss_since_baseline_pct" in diameter.columns:
-        keys = pd.MultiIndex.from_arrays([diameter["tube_id"], diameter["focal_spot"]])
-        add = pd.Series(shift, dtype=float).reindex(keys).to_numpy(float) if shift else np.full(len(diameter), np.nan)
-        for col in ("diameter_loss_pct", "diameter_loss_pct_lo", "diameter_loss_pct_hi"):
-            diameter[col] = diameter["loss_since_baseline_pct" if col == "diameter_loss_pct" else
-                                     col.replace("diameter_loss_pct", "loss_since_baseline_pct")] + add
-        diameter = diameter[["tube_id", "focal_spot", "day", "diameter_loss_pct", "diameter_loss_pct_lo",
-                             "diameter_loss_pct_hi"]]
+    dcols, dempty = _join(results, "diameter")
+    if dcols:
+        keys = pd.MultiIndex.from_arrays([dcols["tube_id"], dcols["focal_spot"]])
+        add = pd.Series(shift, dtype=float).reindex(keys).to_numpy(float) if shift else np.full(
+            len(dcols["tube_id"]), np.nan)
+        diameter = pd.DataFrame({
+            "tube_id": dcols.pop("tube_id"), "focal_spot": dcols.pop("focal_spot"), "day": dcols.pop("day"),
+            "diameter_loss_pct": dcols.pop("loss_since_baseline_pct") + add,
+            "diameter_loss_pct_lo": dcols.pop("loss_since_baseline_pct_lo") + add,
+            "diameter_loss_pct_hi": dcols.pop("loss_since_baseline_pct_hi") + add,
+        }, copy=False)
+    else:
+        diameter = dempty if dempty is not None else pd.DataFrame()
     return HealthResult(
         summary=summary,
         rul_cdf=rul_cdf,
