@@ -5,7 +5,7 @@ steady thinning); at a change point both level and slope may change (a recalibra
 offset, an unrecorded tube swap, abrupt damage, a change of workload). The segmentation minimises
 the sum of squared residuals of the segment-wise least-squares lines plus a penalty per change
 point, solved exactly by PELT (Killick et al. 2012) with a cost computed in O(1) per segment from
-prefix sums. :func:`pelt` is a numpy transcription of ``ruptures.Pelt`` (every point a candidate,
+prefix sums. :func:`pelt` is a numpy reimplementation of ``ruptures.Pelt`` (every point a candidate,
 ``jump=1``): the same recursion, pruning and tie-breaking, vectorised over the candidate set, so
 it returns ruptures' break points (tested) at a fraction of the cost of its per-candidate Python
 loop and dictionary copies. No weekly thinning of the candidates was needed.
