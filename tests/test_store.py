@@ -139,3 +139,21 @@ def test_busy_wait_comes_from_the_environment(db_path, monkeypatch):
     finally:
         holder.kill()
         holder.wait()
+
+
+def test_every_connection_caps_duckdb_memory(monkeypatch, tmp_path):
+    # DuckDB's default cap is 80 % of the machine's RAM; the store sets 1 GB, or TUBETRACK_MEMORY.
+    from tubetrack import store
+    from tubetrack.errors import StoreError
+
+    monkeypatch.delenv("TUBETRACK_MEMORY", raising=False)
+    con = store.connect(tmp_path / "a.duckdb")
+    assert con.execute("SELECT current_setting('memory_limit')").fetchone()[0] == "953.6 MiB"
+    con.close()
+    monkeypatch.setenv("TUBETRACK_MEMORY", "512MB")
+    con = store.connect(tmp_path / "a.duckdb", read_only=True)
+    assert con.execute("SELECT current_setting('memory_limit')").fetchone()[0] == "488.2 MiB"
+    con.close()
+    monkeypatch.setenv("TUBETRACK_MEMORY", "lots")
+    with pytest.raises(StoreError, match="TUBETRACK_MEMORY is 'lots'"):
+        store.connect(tmp_path / "a.duckdb")

@@ -237,6 +237,26 @@ def default_db_path() -> Path:
     return Path(os.environ.get(ENV_DB) or DEFAULT_DB_NAME)
 
 
+#: DuckDB's own memory cap for every command (its default is 80 % of the machine's RAM, which
+#: lets the buffer cache of a whole-fleet analysis grow with the fleet); work beyond it spills to
+#: ``<store>.tmp``. Override: ``$TUBETRACK_MEMORY`` (ingest has its own, TUBETRACK_INGEST_MEMORY).
+ENV_MEMORY = "TUBETRACK_MEMORY"
+DEFAULT_MEMORY_LIMIT = "1GB"
+
+
+def _apply_memory_limit(con: duckdb.DuckDBPyConnection) -> None:
+    import duckdb
+
+    raw = os.environ.get(ENV_MEMORY, "").strip() or DEFAULT_MEMORY_LIMIT
+    try:
+        con.execute(f"SET memory_limit = '{raw.replace(chr(39), '')}'")
+    except duckdb.Error:
+        con.close()
+        raise StoreError(
+            f"{ENV_MEMORY} is {raw!r}, not a memory size. Unset it or give e.g. 2GB or 512MB."
+        ) from None
+
+
 def _env_wait_s() -> float:
     """``$TUBETRACK_WAIT_S`` [s], the busy-store wait of every command; 30 s when unset."""
     raw = os.environ.get(ENV_WAIT, "").strip()
@@ -320,6 +340,7 @@ def connect(
             raise StoreError(f"cannot open store {target}: {exc}") from exc
     if _has_icu(con):
         con.execute("SET TimeZone = 'UTC'")
+    _apply_memory_limit(con)
     if not read_only:
         migrate(con)
     else:
