@@ -292,3 +292,31 @@ def test_predictive_mixture_matches_simulation_of_parameters_and_outcomes():
     # quantiles of integer counts from 400 vs 20000 parameter draws agree within one count
     assert abs(last["cumulative_lower_95"] - lo) <= 1
     assert abs(last["cumulative_upper_95"] - hi) <= 1
+
+
+def test_health_cdf_all_curves_at_once_equal_numpy_interp_per_curve():
+    # Reference: numpy.interp curve by curve, focal spots combined as 1 - prod(1 - p); one curve
+    # on its own horizons takes the per-curve path.
+    rng = np.random.default_rng(4)
+    hz = np.array([30, 60, 90, 180, 365])
+    rows = []
+    for t in ("A", "B", "C"):
+        for f in ("small", "large"):
+            h = hz if (t, f) != ("C", "large") else np.array([45, 120])
+            p = np.sort(rng.random(h.size))
+            rows += [{"tube_id": t, "focal_spot": f, "horizon_days": int(a), "p_end_of_life": b}
+                     for a, b in zip(h, p, strict=True)]
+    rul = pd.DataFrame(rows)
+    days = np.array([0.0, 10.0, 30.0, 75.0, 200.0, 400.0])
+    out = health_filament_cdf(rul, ["C", "A", "D", "B"], days)
+    for i, t in enumerate(["C", "A", "D", "B"]):
+        g = rul[rul["tube_id"] == t]
+        if g.empty:
+            assert np.isnan(out[i]).all()
+            continue
+        surv = np.ones(days.size)
+        for _, c in g.groupby("focal_spot"):
+            x = np.r_[0.0, c["horizon_days"].to_numpy(float)]
+            y = np.maximum.accumulate(np.r_[0.0, c["p_end_of_life"].to_numpy(float)])
+            surv *= 1 - np.interp(days, x, y)
+        np.testing.assert_allclose(out[i], 1 - surv, rtol=1e-12, atol=1e-15)

@@ -242,25 +242,47 @@ def health_filament_cdf(
     Focal spots combined as 1 - prod(1 - p); linear interpolation in days from (0, 0); flat
     beyond the last horizon.
     """
+    import pandas as pd
+
     ids = list(tube_ids)
     out = np.full((len(ids), len(days)), np.nan)
     if rul_cdf is None or rul_cdf.empty:
         return out
-    pos = {t: i for i, t in enumerate(ids)}
+    pos = pd.Series(np.arange(len(ids)), index=pd.Index(ids))
     r = rul_cdf.dropna(subset=["p_end_of_life", "horizon_days"])
-    r = r[r["tube_id"].isin(pos)]
-    for (tube, _spot), g in r.groupby(["tube_id", "focal_spot"], sort=False):
-        g = g.sort_values("horizon_days")
-        x = np.concatenate([[0.0], g["horizon_days"].to_numpy(dtype=float)])
-        y = np.concatenate(
-            [[0.0], np.clip(g["p_end_of_life"].to_numpy(dtype=float), 0, 1)]
-        )
-        y = np.maximum.accumulate(y)
-        p = np.interp(days, x, y)
-        i = pos[tube]
-        prev = np.where(np.isnan(out[i]), 0.0, out[i])
-        out[i] = 1 - (1 - prev) * (1 - p)
+    r = r[r["tube_id"].isin(pos.index)]
+    if r.empty:
+        return out
+    # one row per (tube, focal spot), one column per horizon; the usual case (every curve on
+    # the same horizons) is interpolated for all curves at once
+    wide = r.pivot_table(index=["tube_id", "focal_spot"], columns="horizon_days",
+                         values="p_end_of_life", aggfunc="last", sort=True)
+    complete = wide.notna().all(axis=1).to_numpy()
+    tube_of = wide.index.get_level_values("tube_id")
+    p = np.empty((len(wide), len(days)))
+    if complete.any():
+        x = np.concatenate([[0.0], wide.columns.to_numpy(dtype=float)])
+        y = np.clip(wide.to_numpy(dtype=float)[complete], 0, 1)
+        y = np.maximum.accumulate(np.concatenate([np.zeros((len(y), 1)), y], axis=1), axis=1)
+        p[complete] = _interp_rows(np.asarray(days, float), x, y)
+    for j in np.flatnonzero(~complete):  # curves with their own horizons
+        row = wide.iloc[j].dropna()
+        x = np.concatenate([[0.0], row.index.to_numpy(dtype=float)])
+        y = np.maximum.accumulate(np.concatenate([[0.0], np.clip(row.to_numpy(dtype=float), 0, 1)]))
+        p[j] = np.interp(days, x, y)
+    # focal spots of one tube: 1 - prod(1 - p)
+    surv = pd.DataFrame(1.0 - p).groupby(pos.loc[tube_of].to_numpy()).prod()
+    out[surv.index.to_numpy()] = 1.0 - surv.to_numpy()
     return out
+
+
+def _interp_rows(xq: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """``np.interp(xq, x, y[i])`` for every row i of ``y`` at once (x increasing; flat outside)."""
+    j = np.clip(np.searchsorted(x, xq, side="right") - 1, 0, len(x) - 1)
+    j1 = np.minimum(j + 1, len(x) - 1)
+    span = x[j1] - x[j]
+    w = np.where(span > 0, (np.clip(xq, x[0], x[-1]) - x[j]) / np.where(span > 0, span, 1.0), 0.0)
+    return y[:, j] * (1.0 - w) + y[:, j1] * w
 
 
 @dataclass(frozen=True)
