@@ -199,8 +199,13 @@ def uptime(
     edges_ns = np.array(edges, dtype="datetime64[ns]").astype(np.int64)
     sys_tab = systems.set_index("system_id") if len(systems) else pd.DataFrame()
     ids = sorted(set(systems["system_id"]) | set(d["system_id"] if len(d) else []))
-    period_rows, sys_rows, episodes = [], [], []
+    period_parts, sys_rows, episodes = [], [], []
     sched_missing = 0
+    n_p = len(edges) - 1
+    cal_h = np.diff(edges_ns) / 1e9 / _H  # calendar hours per period
+    labels = [_period_label(edges[p], period) for p in range(n_p)]
+    by_sys = {k: g for k, g in d.groupby("system_id", sort=False)} if len(d) else {}
+    empty = d.iloc[0:0] if len(d) else d
     for sid in ids:
         info = sys_tab.loc[sid] if sid in sys_tab.index else None
         sched = (
@@ -217,25 +222,14 @@ def uptime(
             else math.nan
         )
         site = info["site"] if info is not None and "site" in info else None
-        recs = d[d["system_id"] == sid] if len(d) else d
-        rs = (
-            np.clip(
-                recs["start_utc"].to_numpy(dtype="datetime64[ns]").astype(np.int64),
-                edges_ns[0],
-                edges_ns[-1],
-            )
-            if len(recs)
-            else np.zeros(0, np.int64)
-        )
-        re_ = (
-            np.clip(
-                recs["end_utc"].to_numpy(dtype="datetime64[ns]").astype(np.int64),
-                edges_ns[0],
-                edges_ns[-1],
-            )
-            if len(recs)
-            else np.zeros(0, np.int64)
-        )
+        recs = by_sys.get(sid, empty)
+        if len(recs):
+            rs = np.clip(recs["start_utc"].to_numpy(dtype="datetime64[ns]").astype(np.int64),
+                         edges_ns[0], edges_ns[-1])
+            re_ = np.clip(recs["end_utc"].to_numpy(dtype="datetime64[ns]").astype(np.int64),
+                          edges_ns[0], edges_ns[-1])
+        else:
+            rs = re_ = np.zeros(0, np.int64)
         bounds = np.unique(np.concatenate([edges_ns, rs, re_]))
         seg_s, seg_e = bounds[:-1], bounds[1:]
         hours = (seg_e - seg_s) / 1e9 / _H
@@ -253,72 +247,64 @@ def uptime(
             tube = np.zeros(len(seg_s), bool)
         corrective = (state == _HARD) | (state == _PARTIAL)
         pidx = np.searchsorted(edges_ns, seg_s, side="right") - 1
-        seg = pd.DataFrame(
+        seg = {
+            "h": hours,
+            "corr_w": np.where(corrective, hours * w, 0.0),
+            "hard": np.where(state == _HARD, hours, 0.0),
+            "partial": np.where(state == _PARTIAL, hours, 0.0),
+            "prev": np.where(state == _PREVENTIVE, hours, 0.0),
+            "ext": np.where(state == _EXTERNAL, hours, 0.0),
+            "tube": np.where(corrective & tube, hours * w, 0.0),
+        }
+        agg = {k: np.bincount(pidx, weights=v, minlength=n_p)[:n_p] for k, v in seg.items()}
+        frac = sched / 168.0
+        req_wall = cal_h - agg["prev"] - agg["ext"]
+        base_pm = cal_h - agg["ext"]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            avail = np.where(req_wall > 0, 100 * (1 - agg["corr_w"] / req_wall), math.nan)
+            avail_pm = np.where(base_pm > 0, 100 * (1 - (agg["corr_w"] + agg["prev"]) / base_pm),
+                                math.nan)
+        period_parts.append(
             {
-                "p": pidx,
-                "h": hours,
-                "corr_w": np.where(corrective, hours * w, 0.0),
-                "hard": np.where(state == _HARD, hours, 0.0),
-                "partial": np.where(state == _PARTIAL, hours, 0.0),
-                "prev": np.where(state == _PREVENTIVE, hours, 0.0),
-                "ext": np.where(state == _EXTERNAL, hours, 0.0),
-                "tube": np.where(corrective & tube, hours * w, 0.0),
+                "system_id": [sid] * n_p,
+                "site": [site] * n_p,
+                "period": labels,
+                "period_start_utc": edges[:-1],
+                "period_end_utc": edges[1:],
+                "calendar_h": cal_h,
+                "required_h": frac * req_wall,
+                "corrective_down_h": agg["corr_w"],
+                "hard_down_h": agg["hard"],
+                "partial_down_h": agg["partial"],
+                "preventive_h": agg["prev"],
+                "external_h": agg["ext"],
+                "tube_down_h": agg["tube"],
+                "other_down_h": agg["corr_w"] - agg["tube"],
+                "required_down_h": frac * agg["corr_w"],
+                "availability_pct": avail,
+                "availability_incl_pm_pct": avail_pm,
+                "uptime_target_pct": [target] * n_p,
             }
         )
-        agg = seg.groupby("p").sum().reindex(range(len(edges) - 1), fill_value=0.0)
-        for p, row in agg.iterrows():
-            cal = (edges_ns[p + 1] - edges_ns[p]) / 1e9 / _H
-            req_wall = cal - row["prev"] - row["ext"]
-            frac = sched / 168.0
-            avail = 100 * (1 - row["corr_w"] / req_wall) if req_wall > 0 else math.nan
-            avail_pm = (
-                100 * (1 - (row["corr_w"] + row["prev"]) / (cal - row["ext"]))
-                if cal - row["ext"] > 0
-                else math.nan
-            )
-            period_rows.append(
-                {
-                    "system_id": sid,
-                    "site": site,
-                    "period": _period_label(edges[p], period),
-                    "period_start_utc": edges[p],
-                    "period_end_utc": edges[p + 1],
-                    "calendar_h": cal,
-                    "required_h": frac * req_wall,
-                    "corrective_down_h": row["corr_w"],
-                    "hard_down_h": row["hard"],
-                    "partial_down_h": row["partial"],
-                    "preventive_h": row["prev"],
-                    "external_h": row["ext"],
-                    "tube_down_h": row["tube"],
-                    "other_down_h": row["corr_w"] - row["tube"],
-                    "required_down_h": frac * row["corr_w"],
-                    "availability_pct": avail,
-                    "availability_incl_pm_pct": avail_pm,
-                    "uptime_target_pct": target,
-                }
-            )
         # corrective episodes: maximal runs of contiguous corrective segments
         run_start = corrective & np.concatenate(
             [[True], ~corrective[:-1] | (seg_s[1:] != seg_e[:-1])]
         )
-        run_id = np.cumsum(run_start) - 1
-        ep = pd.DataFrame(
-            {
-                "run": run_id[corrective],
-                "s": seg_s[corrective],
-                "e": seg_e[corrective],
-                "tube": tube[corrective],
-            }
-        )
-        ep = ep.groupby("run").agg(s=("s", "min"), e=("e", "max"), tube=("tube", "any"))
-        ep["system_id"] = sid
-        episodes.append(ep)
-        r = len(ep)
-        tot = seg[["h", "corr_w", "hard", "partial", "prev", "ext", "tube"]].sum()
+        cs, ce, ct = seg_s[corrective], seg_e[corrective], tube[corrective]
+        first = np.flatnonzero(run_start[corrective])
+        r = int(first.size)
+        if r:
+            last = np.r_[first[1:], cs.size] - 1
+            ep_s, ep_e = cs[first], ce[last]
+            ep_t = np.logical_or.reduceat(ct, first)
+            episodes.append(pd.DataFrame({"s": ep_s, "e": ep_e, "tube": ep_t, "system_id": sid}))
+        else:
+            ep_s = ep_e = np.zeros(0, np.int64)
+            ep_t = np.zeros(0, bool)
+        tot = {k: float(v.sum()) for k, v in seg.items()}
         up_h = tot["h"] - tot["hard"] - tot["prev"] - tot["ext"]
         mtbf, lo, hi = mtbf_chi_square_bounds(up_h, r, confidence)
-        req_wall = tot["h"] - tot["prev"] - tot["ext"]
+        req_wall_t = tot["h"] - tot["prev"] - tot["ext"]
         sys_rows.append(
             {
                 "system_id": sid,
@@ -326,7 +312,7 @@ def uptime(
                 "window_start_utc": edges[0],
                 "window_end_utc": edges[-1],
                 "calendar_h": tot["h"],
-                "required_h": sched / 168.0 * req_wall,
+                "required_h": sched / 168.0 * req_wall_t,
                 "corrective_down_h": tot["corr_w"],
                 "hard_down_h": tot["hard"],
                 "partial_down_h": tot["partial"],
@@ -334,23 +320,25 @@ def uptime(
                 "external_h": tot["ext"],
                 "tube_down_h": tot["tube"],
                 "other_down_h": tot["corr_w"] - tot["tube"],
-                "availability_pct": 100 * (1 - tot["corr_w"] / req_wall)
-                if req_wall > 0
+                "availability_pct": 100 * (1 - tot["corr_w"] / req_wall_t)
+                if req_wall_t > 0
                 else math.nan,
                 "uptime_target_pct": target,
                 "failures": r,
-                "tube_failures": int(ep["tube"].sum()),
+                "tube_failures": int(ep_t.sum()),
                 "up_h": up_h,
                 "mtbf_h": mtbf,
                 "mtbf_lower_h": lo,
                 "mtbf_upper_h": hi,
-                "mttr_h": float(((ep["e"] - ep["s"]) / 1e9 / _H).mean())
-                if r
-                else math.nan,
+                "mttr_h": float(((ep_e - ep_s) / 1e9 / _H).mean()) if r else math.nan,
                 "confidence": confidence,
             }
         )
-    periods = pd.DataFrame(period_rows)
+    periods = (
+        pd.concat([pd.DataFrame(part) for part in period_parts], ignore_index=True)
+        if period_parts
+        else pd.DataFrame()
+    )
     summary = pd.DataFrame(sys_rows)
     for f in (periods, summary):
         if len(f):
@@ -363,7 +351,11 @@ def uptime(
             f"{sched_missing} system(s) have no scheduled_hours_per_week: required time assumed "
             "24/7 (168 h per week)."
         )
-    eps = pd.concat(episodes, ignore_index=True) if episodes else pd.DataFrame()
+    eps = (
+        pd.concat(episodes, ignore_index=True)
+        if episodes
+        else pd.DataFrame(columns=["system_id", "s", "e", "tube"])
+    )
     if len(eps):
         eps["start_utc"] = pd.to_datetime(eps["s"])
         eps["end_utc"] = pd.to_datetime(eps["e"])
