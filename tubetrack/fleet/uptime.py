@@ -196,7 +196,8 @@ def uptime(
         d = classify_downtime(d, partial_weight)
         d = d[(d["end_utc"] > start) & (d["start_utc"] < end)]
     edges = period_edges(start, end, period)
-    edges_ns = np.array(edges, dtype="datetime64[ns]").astype(np.int64)
+    edges_dt = np.array(edges, dtype="datetime64[ns]")
+    edges_ns = edges_dt.astype(np.int64)
     sys_tab = systems.set_index("system_id") if len(systems) else pd.DataFrame()
     ids = sorted(set(systems["system_id"]) | set(d["system_id"] if len(d) else []))
     period_parts, sys_rows, episodes = [], [], []
@@ -269,8 +270,8 @@ def uptime(
                 "system_id": [sid] * n_p,
                 "site": [site] * n_p,
                 "period": labels,
-                "period_start_utc": edges[:-1],
-                "period_end_utc": edges[1:],
+                "period_start_utc": edges_dt[:-1],
+                "period_end_utc": edges_dt[1:],
                 "calendar_h": cal_h,
                 "required_h": frac * req_wall,
                 "corrective_down_h": agg["corr_w"],
@@ -334,8 +335,10 @@ def uptime(
                 "confidence": confidence,
             }
         )
+    # one frame from the per-system columns (one DataFrame per system cost more than the sums)
     periods = (
-        pd.concat([pd.DataFrame(part) for part in period_parts], ignore_index=True)
+        pd.DataFrame({k: np.concatenate([np.asarray(part[k]) for part in period_parts])
+                      for k in period_parts[0]})
         if period_parts
         else pd.DataFrame()
     )
