@@ -242,8 +242,11 @@ def survival_cmd(
                 cb = fit.survival_bounds(grid)
                 cb.insert(0, "group", name)
                 curve_frames.append(cb)
+        # groups without events give empty incidence frames: leave them out of the concat
+        kept = [f for f in inc_frames if len(f)]
         incidence = (
-            pd.concat(inc_frames, ignore_index=True) if inc_frames else pd.DataFrame()
+            pd.concat(kept, ignore_index=True) if kept else
+            (inc_frames[0] if inc_frames else pd.DataFrame())
         )
         curve = (
             pd.concat(curve_frames, ignore_index=True)
