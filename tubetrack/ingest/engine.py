@@ -506,24 +506,7 @@ def _ingest_in_txn(
         )
         n_dup_store = int(n_same)
     else:
-        prune = ""
-        tc = kind.time_column
-        if tc:
-            lo, hi = con.execute(
-                f"SELECT min({qi(tc)}), max({qi(tc)}) FROM _tt_good"
-            ).fetchone()
-            if lo is not None:
-                # literal bounds (our own datetimes, not user text) so DuckDB prunes by zone maps
-                prune = (
-                    f" AND e.{qi(tc)} BETWEEN TIMESTAMP '{lo:%Y-%m-%d %H:%M:%S.%f}' "
-                    f"AND TIMESTAMP '{hi:%Y-%m-%d %H:%M:%S.%f}'"
-                )
-        # restrict the stored keys to the new rows' systems (a semi join: DuckDB pushes the
-        # build side's min/max into the scan) and time range (constant filter: zone maps), so
-        # an incremental file never rescans the whole table. Measured on 10,000,000 stored rows
-        # of 20 systems: 0.11 s instead of 1.49 s for one system's file.
-        if "system_id" in key:
-            prune += " AND e.system_id IN (SELECT DISTINCT system_id FROM _tt_good)"
+        prune = _prune_clause(con, kind.time_column, key, "_tt_good")
         con.execute(
             f"CREATE OR REPLACE TEMP TABLE _tt_existing AS SELECT {key_cols} FROM {target} e "
             f"WHERE true{prune}"
@@ -542,13 +525,7 @@ def _ingest_in_txn(
 
     if not dry_run:
         col_list = ", ".join(qi(c) for c in cols)
-        extra_cols, extra_vals = ", source_file", ", ?"
-        if kind.has_line:
-            extra_cols += ", source_line"
-            extra_vals += ", _line"
-        if kind.name == "exposures":
-            extra_cols += ", source_kind"
-            extra_vals += ", 'log'"
+        extra_cols, extra_vals = _provenance_columns(kind, "?")
         order = f" ORDER BY {qi(kind.time_column)}" if kind.time_column else ""
         conflict = ""
         if kind.upsert:
@@ -575,13 +552,7 @@ def _ingest_in_txn(
                 file_id,
             ],
         )
-    message = ""
-    if ignored:
-        message = f"ignored columns: {', '.join(ignored[:10])}" + (
-            " ..." if len(ignored) > 10 else ""
-        )
-    if rows_read == 0:
-        message = (message + "; " if message else "") + "header only: no data rows"
+    message = _file_message(ignored, rows_read)
     preview = None
     if dry_run and preview_rows:
         rows = con.execute(
@@ -625,6 +596,58 @@ def _ingest_in_txn(
         file_id=file_id,
     )
     return report, preview
+
+
+def _file_message(ignored: list[str], rows_read: int) -> str:
+    """A file's report note: columns it carried that we ignore, and a header-only file."""
+    message = ""
+    if ignored:
+        message = f"ignored columns: {', '.join(ignored[:10])}" + (
+            " ..." if len(ignored) > 10 else ""
+        )
+    if rows_read == 0:
+        message = (message + "; " if message else "") + "header only: no data rows"
+    return message
+
+
+def _provenance_columns(kind: Kind, file_value: str) -> tuple[str, str]:
+    """(column list, select list) appended to an INSERT: the source file (``file_value``, a
+    parameter ``?`` or a column), its line where the kind keeps one, and ``'log'`` as the
+    exposure source."""
+    cols, vals = ", source_file", f", {file_value}"
+    if kind.has_line:
+        cols += ", source_line"
+        vals += ", _line"
+    if kind.name == "exposures":
+        cols += ", source_kind"
+        vals += ", 'log'"
+    return cols, vals
+
+
+def _prune_clause(
+    con: duckdb.DuckDBPyConnection, time_column: str | None, key: Any, new_rows: str
+) -> str:
+    """SQL ``AND ...`` restricting stored rows ``e`` to the new rows' systems and time range.
+
+    A semi join on the systems (DuckDB pushes the build side's min/max into the scan) and a
+    constant time range (zone maps), so an incremental file never rescans the whole table.
+    Measured on 10,000,000 stored rows of 20 systems: 0.11 s instead of 1.49 s for one system's
+    file. ``new_rows`` is a FROM target (``_tt_good``, or ``table WHERE rowid > N``).
+    """
+    prune = ""
+    if time_column:
+        lo, hi = con.execute(
+            f"SELECT min({qi(time_column)}), max({qi(time_column)}) FROM {new_rows}"
+        ).fetchone()
+        if lo is not None:
+            # literal bounds (our own datetimes, not user text) so DuckDB prunes by zone maps
+            prune = (
+                f" AND e.{qi(time_column)} BETWEEN TIMESTAMP '{lo:%Y-%m-%d %H:%M:%S.%f}' "
+                f"AND TIMESTAMP '{hi:%Y-%m-%d %H:%M:%S.%f}'"
+            )
+    if "system_id" in key:
+        prune += f" AND e.system_id IN (SELECT DISTINCT system_id FROM {new_rows})"
+    return prune
 
 
 def _stage_columns(con: duckdb.DuckDBPyConnection) -> list[str]:
@@ -704,13 +727,7 @@ def _fast_ingest(
     sel = build_fast_select(kind, mapped, typed_from, join, line, now_utc, fluoro)
     cols = [f.name for f in kind.fields]
     col_list = ", ".join(qi(c) for c in cols)
-    extra_cols, extra_vals = ", source_file", f", {p.add(shown)}"
-    if kind.has_line:
-        extra_cols += ", source_line"
-        extra_vals += ", _line"
-    if kind.name == "exposures":
-        extra_cols += ", source_kind"
-        extra_vals += ", 'log'"
+    extra_cols, extra_vals = _provenance_columns(kind, p.add(shown))
     last = -1 if before is None else int(before)
     sql = (
         f"INSERT INTO {target} ({col_list}{extra_cols}) SELECT {_derived_select(kind)}"
@@ -754,18 +771,7 @@ def _fast_ingest(
         )
     n_dup_store = 0
     if last >= 0 and n_read > n_dup_in:
-        prune = ""
-        if tc:
-            lo, hi = con.execute(
-                f"SELECT min({qi(tc)}), max({qi(tc)}) FROM {target} WHERE {new}"
-            ).fetchone()
-            if lo is not None:
-                prune = (
-                    f" AND e.{qi(tc)} BETWEEN TIMESTAMP '{lo:%Y-%m-%d %H:%M:%S.%f}' "
-                    f"AND TIMESTAMP '{hi:%Y-%m-%d %H:%M:%S.%f}'"
-                )
-        if "system_id" in key:
-            prune += f" AND e.system_id IN (SELECT DISTINCT system_id FROM {target} WHERE {new})"
+        prune = _prune_clause(con, tc, key, f"{target} WHERE {new}")
         con.execute(
             f"CREATE OR REPLACE TEMP TABLE _tt_existing AS SELECT {key_cols} FROM {target} e "
             f"WHERE e.rowid <= {last}{prune}"
@@ -795,13 +801,7 @@ def _fast_ingest(
             utcnow(),
         ],
     ).fetchone()
-    message = ""
-    if ignored:
-        message = f"ignored columns: {', '.join(ignored[:10])}" + (
-            " ..." if len(ignored) > 10 else ""
-        )
-    if n_read == 0:
-        message = (message + "; " if message else "") + "header only: no data rows"
+    message = _file_message(ignored, n_read)
     return FileReport(
         shown,
         kind.name,
@@ -960,13 +960,7 @@ def ingest_batch(
         )
         cols = [f.name for f in kind.fields]
         col_list = ", ".join(qi(c) for c in cols)
-        extra_cols, extra_vals = ", source_file", ", _file"
-        if kind.has_line:
-            extra_cols += ", source_line"
-            extra_vals += ", _line"
-        if kind.name == "exposures":
-            extra_cols += ", source_kind"
-            extra_vals += ", 'log'"
+        extra_cols, extra_vals = _provenance_columns(kind, "_file")
         sql = (
             f"INSERT INTO {target} ({col_list}{extra_cols}) SELECT {_derived_select(kind)}"
             f"{extra_vals} FROM ({sel}) f"
@@ -1007,19 +1001,7 @@ def ingest_batch(
             ).fetchall():
                 dup_in[f] = dup_in.get(f, 0) + 1
         # a key already stored, or in an earlier file of the run
-        tc = kind.time_column
-        prune = ""
-        if tc:
-            lo, hi = con.execute(
-                f"SELECT min({qi(tc)}), max({qi(tc)}) FROM {target} WHERE {new}"
-            ).fetchone()
-            if lo is not None:
-                prune = (
-                    f" AND e.{qi(tc)} BETWEEN TIMESTAMP '{lo:%Y-%m-%d %H:%M:%S.%f}' "
-                    f"AND TIMESTAMP '{hi:%Y-%m-%d %H:%M:%S.%f}'"
-                )
-        if "system_id" in kind.key:
-            prune += f" AND e.system_id IN (SELECT DISTINCT system_id FROM {target} WHERE {new})"
+        prune = _prune_clause(con, kind.time_column, kind.key, f"{target} WHERE {new}")
         ekeys = ", ".join(f"e.{qi(k)}" for k in kind.key)
         con.execute(
             f"CREATE OR REPLACE TEMP TABLE _tt_existing AS SELECT {ekeys}, -1 AS _idx "
