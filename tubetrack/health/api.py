@@ -19,6 +19,7 @@ import pandas as pd
 
 from tubetrack import __version__
 from tubetrack.health import sql
+from tubetrack.health.drift import as_datetime
 from tubetrack.health.forecast import (
     CDF_HORIZONS_DAYS,
     analyse_tube_task,
@@ -28,7 +29,6 @@ from tubetrack.health.forecast import (
 )
 from tubetrack.health.levels import assign_levels
 from tubetrack.health.params import HealthParams
-from tubetrack.health.drift import as_datetime
 from tubetrack.health.threshold import (
     Threshold,
     failed_focal_losses,

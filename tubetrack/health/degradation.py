@@ -36,7 +36,6 @@ import numpy as np
 import pandas as pd
 
 from tubetrack.errors import TubetrackWarning
-
 from tubetrack.health.drift import as_datetime
 
 

@@ -31,8 +31,8 @@ from tubetrack.health.degradation import (
     station_losses,
     wear_index,
 )
-from tubetrack.health.params import HealthParams
 from tubetrack.health.drift import as_datetime
+from tubetrack.health.params import HealthParams
 from tubetrack.health.signatures import tube_signatures
 
 #: Horizons of the stored end-of-life CDF [days].
@@ -155,16 +155,14 @@ def threshold_given_survival(loss_now: np.ndarray, threshold: float, threshold_s
     z = (lo - threshold) / scale
     if np.isfinite(threshold_df):
         df = max(threshold_df, 1.0)
-        f_lo = special.stdtr(df, z)
-        # upper tail through the survival function: exact when f_lo is close to 1
+        # upper tail through the survival function: exact far out in the tail
         s_lo = special.stdtr(df, -z)
         q = -special.stdtrit(df, np.clip(s_lo * (1.0 - np.asarray(u, float)), 1e-300, 1.0))
     else:
-        f_lo = special.ndtr(z)
         s_lo = special.ndtr(-z)
         q = -special.ndtri(np.clip(s_lo * (1.0 - np.asarray(u, float)), 1e-300, 1.0))
-    d = threshold + scale * q
-    d = np.where(f_lo < 1.0, d, lo)
+    # no probability left above the present loss: the draw is the present loss itself
+    d = np.where(s_lo > 0.0, threshold + scale * q, lo)
     return np.maximum(d, lo)
 
 
