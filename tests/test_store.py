@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import subprocess
 import sys
 
@@ -86,7 +87,9 @@ def test_missing_results_table_is_not_found(mem_store):
         store.read_results(mem_store, "result_nothing")
 
 
-def test_second_writer_waits_then_fails_clearly(db_path):
+@contextlib.contextmanager
+def _lock_held(db_path):
+    """Another process holds the store's write lock for the duration of the block."""
     store.connect(db_path).close()
     holder = subprocess.Popen(
         [sys.executable, "-c",
@@ -96,13 +99,18 @@ def test_second_writer_waits_then_fails_clearly(db_path):
     )
     try:
         assert holder.stdout.readline().strip() == "held"
+        yield
+    finally:
+        holder.kill()
+        holder.wait()
+
+
+def test_second_writer_waits_then_fails_clearly(db_path):
+    with _lock_held(db_path):
         messages = []
         with pytest.raises(StoreBusyError, match="in use by another tubetrack process"):
             store.connect(db_path, wait_s=1.0, on_wait=messages.append)
         assert messages and "waiting" in messages[0]
-    finally:
-        holder.kill()
-        holder.wait()
 
 
 def test_result_set_is_replaced_as_one(mem_store):
@@ -121,24 +129,13 @@ def test_result_set_is_replaced_as_one(mem_store):
 
 
 def test_busy_wait_comes_from_the_environment(db_path, monkeypatch):
-    store.connect(db_path).close()
-    holder = subprocess.Popen(
-        [sys.executable, "-c",
-         "import sys,time,duckdb; c=duckdb.connect(sys.argv[1]); print('held', flush=True); "
-         "time.sleep(30)", str(db_path)],
-        stdout=subprocess.PIPE, text=True,
-    )
-    try:
-        assert holder.stdout.readline().strip() == "held"
+    with _lock_held(db_path):
         monkeypatch.setenv("TUBETRACK_WAIT_S", "0.2")
         with pytest.raises(StoreBusyError, match=r"waited 0 s"):
             store.connect(db_path, on_wait=lambda m: None)
         monkeypatch.setenv("TUBETRACK_WAIT_S", "soon")
         with pytest.raises(StoreError, match="TUBETRACK_WAIT_S is 'soon'"):
             store.connect(db_path)
-    finally:
-        holder.kill()
-        holder.wait()
 
 
 def test_every_connection_caps_duckdb_memory(monkeypatch, tmp_path):

@@ -137,11 +137,13 @@ def ingest_file(
             f"cannot read the file ({exc.strerror}). Check the path and permissions.",
             dry_run,
         ), None
+    # the kind a failed file is reported under, before its header is read
+    named_kind = profile.kind if profile else kind_from_name(path.name) or kind
     if scan.size == 0:
         return _failed(
             con,
             shown,
-            profile.kind if profile else kind_from_name(path.name) or kind,
+            named_kind,
             pname,
             scan.sha256,
             started,
@@ -153,7 +155,7 @@ def ingest_file(
         return _failed(
             con,
             shown,
-            profile.kind if profile else kind_from_name(path.name) or kind,
+            named_kind,
             pname,
             scan.sha256,
             started,
