@@ -44,3 +44,32 @@ def test_tubes_as_of_hides_future():
                       "removal_reason": ["filament", None]})
     k = tubes_as_of(t, pd.Timestamp("2024-05-01"))
     assert list(k["tube_id"]) == ["A"] and k["removal_reason"].isna().all()
+
+
+def test_chunked_pool_analysis_equals_the_serial_whole_fleet(mem_store, sim, load, monkeypatch):
+    # analyse_fleet in chunks of two tubes on a two-process pool (per-tube step and the fleet
+    # step's forecasts both in the pool) against analyse_frames on the whole fleet in one process
+    from tubetrack.health import api
+
+    parts, rows = [], []
+    for i in range(5):
+        tid, sid = f"P{i}", f"S{i}"
+        days = 260 + 25 * i
+        parts.append(sim(60 + i, tube_id=tid, system_id=sid, n_days=days, rate_at_400ma_per_s=3e-6)[0])
+        gone = i < 3
+        rows.append({"tube_id": tid, "system_id": sid, "installed_at_utc": pd.Timestamp("2024-01-01"),
+                     "removed_at_utc": pd.Timestamp("2024-01-01") + pd.Timedelta(days=days) if gone else pd.NaT,
+                     "removal_reason": "filament" if gone else None})
+    load(mem_store, pd.concat(parts, ignore_index=True), pd.DataFrame(rows))
+    cut = pd.Timestamp("2024-01-01") + pd.Timedelta(days=370)
+    serial = analyse_frames(sql.load_daily(mem_store), sql.load_tubes(mem_store), cut.to_pydatetime(),
+                            HealthParams(workers=1), analysed_at=cut.to_pydatetime())
+    monkeypatch.setattr(api, "CHUNK_TUBES", 2)
+    pooled = api.analyse_fleet(mem_store, cut.to_pydatetime(), HealthParams(workers=2, serial_below=0))
+    assert set(serial.summary["tube_id"]) == {"P3", "P4"}
+    for name, frame in serial.tables().items():
+        other = pooled.tables()[name]
+        if name == "result_health":
+            frame, other = frame.drop(columns="analysed_at_utc"), other.drop(columns="analysed_at_utc")
+        pd.testing.assert_frame_equal(other.reset_index(drop=True), frame.reset_index(drop=True),
+                                      check_dtype=False, rtol=1e-9)

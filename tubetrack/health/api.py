@@ -23,9 +23,8 @@ from tubetrack.health.drift import as_datetime
 from tubetrack.health.forecast import (
     CDF_HORIZONS_DAYS,
     analyse_tube_task,
-    forecast_from_state,
+    forecast_task,
     update_state,
-    wiener_cross_check,
 )
 from tubetrack.health.levels import assign_levels
 from tubetrack.health.params import HealthParams
@@ -161,6 +160,12 @@ def _compact(result: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
+def _analyse_compact(args: tuple) -> dict[str, Any]:
+    """Process-pool entry point of :func:`analyse_fleet`: one tube, compacted in the worker (the
+    column arrays pickle faster than the frames, and the parent's serial share shrinks)."""
+    return _compact(analyse_tube_task(args))
+
+
 def _join(results: list[dict[str, Any]], key: str) -> tuple[dict[str, np.ndarray], pd.DataFrame | None]:
     """Concatenate one result table's column arrays over the tubes, releasing the parts.
 
@@ -294,8 +299,13 @@ def _fleet_step(
     cut: pd.Timestamp,
     p: HealthParams,
     analysed_at: datetime | None,
+    mapper: Callable[[Callable[[Any], Any], list[Any]], Any] | None = None,
 ) -> HealthResult:
-    """Empirical-Bayes prior, threshold, forecasts, levels and result tables from per-tube results."""
+    """Empirical-Bayes prior, threshold, forecasts, levels and result tables from per-tube results.
+
+    ``mapper(function, items)`` runs the per-state forecasts (in order), e.g. a process pool's
+    ``map``; default the built-in ``map``.
+    """
     # --- empirical-Bayes prior of the physics calibration factor k, per focal spot
     priors = fleet_k_priors([st for r in results for st in r["states"]], p)
     for r in results:
@@ -326,25 +336,22 @@ def _fleet_step(
                                                     "p_end_of_life_180d_wiener")}
     cdfs, pq10, pq50, pq90, ids, focals = [], [], [], [], [], []
     proj_offsets = None
-    for st in served:
-        fc = forecast_from_state(st, thr.mean, thr.sd, p, thr.df)
-        for key in fc_keys:
+    # the Monte Carlo forecasts are independent given the threshold: the pool's map when given
+    forecasts = (mapper or map)(forecast_task, [(st, thr.mean, thr.sd, p, thr.df) for st in served])
+    for st, (fc, cdf, offsets, quantiles) in zip(served, forecasts, strict=True):
+        for key in (*fc_keys, "rul_days_p50_wiener", "p_end_of_life_180d_wiener"):
             cols[key].append(fc[key])
         cols["diameter_loss_pct"].append(100.0 * st["loss_now"])
         cols["diameter_loss_pct_se"].append(100.0 * st["loss_se"])
         cols["wear_factor_k"].append(st["k"])
         cols["wear_factor_k_se"].append(float(np.sqrt(st["cov"][1, 1])))
         cols["wear_rate_pct_per_day"].append(100.0 * max(st["k"], 0.0) * st["rate_phys_per_day"])
-        w50, w180 = wiener_cross_check(st, thr.mean, p.max_rul_days)
-        cols["rul_days_p50_wiener"].append(w50)
-        cols["p_end_of_life_180d_wiener"].append(w180)
-        proj = fc["projection"]
         if proj_offsets is None:
-            proj_offsets = proj["offset_days"]
-        cdfs.append(fc["cdf"])
-        pq10.append(proj["diameter_loss_pct_p10"].to_numpy())
-        pq50.append(proj["diameter_loss_pct_p50"].to_numpy())
-        pq90.append(proj["diameter_loss_pct_p90"].to_numpy())
+            proj_offsets = offsets
+        cdfs.append(cdf)
+        pq10.append(quantiles[0])
+        pq50.append(quantiles[1])
+        pq90.append(quantiles[2])
         ids.append(st["tube_id"])
         focals.append(st["focal_spot"])
     if summaries:
@@ -492,13 +499,19 @@ def analyse_fleet(
     results: list[dict[str, Any]] = []
     if p.workers <= 1 or len(ids) < p.serial_below:
         for i in starts:
-            results.extend(_compact(analyse_tube_task(t)) for t in chunk_tasks(i))
+            results.extend(_analyse_compact(t) for t in chunk_tasks(i))
     else:
         with ProcessPoolExecutor(max_workers=p.workers) as pool:
             tasks = chunk_tasks(starts[0])
             for k in range(len(starts)):
-                running = pool.map(analyse_tube_task, tasks,
+                running = pool.map(_analyse_compact, tasks,
                                    chunksize=max(1, len(tasks) // (p.workers * 8)))
                 tasks = chunk_tasks(starts[k + 1]) if k + 1 < len(starts) else []
-                results.extend(_compact(r) for r in running)
+                results.extend(running)
+
+            def mapper(function: Callable[[Any], Any], items: list[Any]) -> Any:
+                # the workers were forked before the results arrived: they hold none of them
+                return pool.map(function, items, chunksize=max(1, len(items) // (p.workers * 8)))
+
+            return _fleet_step(results, metas, known, cut_ts, p, None, mapper)
     return _fleet_step(results, metas, known, cut_ts, p, None)

@@ -497,6 +497,26 @@ def wiener_cross_check(state: dict[str, Any], threshold: float, max_rul_days: fl
             float(firstpassage.ig_cdf(180.0, mu, sig, dist)))
 
 
+def forecast_task(args: tuple) -> tuple[dict[str, float], np.ndarray, np.ndarray, np.ndarray]:
+    """Process-pool entry point of the fleet step: one state's forecast and Wiener cross-check.
+
+    ``args`` = (state, threshold, threshold_sd, params, threshold_df) as for
+    :func:`forecast_from_state`. Returns (scalars, cdf over :data:`CDF_HORIZONS_DAYS`, projection
+    day offsets, projection loss quantiles [%] as a 3 x steps array P10/P50/P90); plain arrays
+    pickle faster than the projection frame. The scalars are the remaining-life keys plus
+    rul_days_p50_wiener and p_end_of_life_180d_wiener.
+    """
+    state, threshold, threshold_sd, params, threshold_df = args
+    fc = forecast_from_state(state, threshold, threshold_sd, params, threshold_df)
+    out = {k: fc[k] for k in _FORECAST_KEYS}
+    out["rul_days_p50_wiener"], out["p_end_of_life_180d_wiener"] = wiener_cross_check(
+        state, threshold, params.max_rul_days)
+    proj = fc["projection"]
+    quantiles = proj[["diameter_loss_pct_p10", "diameter_loss_pct_p50",
+                      "diameter_loss_pct_p90"]].to_numpy().T
+    return out, fc["cdf"], proj["offset_days"].to_numpy(), quantiles
+
+
 def analyse_tube_task(args: tuple) -> dict[str, Any]:
     """Process-pool entry point: ``analyse_tube(*args)`` with keyword extras."""
     daily, meta, params, calib, events = args
