@@ -75,18 +75,33 @@ def mtbf_chi_square_bounds(
     lower = 2T / chi2_{1-a/2}(2r + 2), upper = 2T / chi2_{a/2}(2r) (MIL-HDBK-338B sec. 8.3.2;
     B. Epstein, M. Sobel, J. Am. Stat. Assoc. 48 (1953) 486-502).
     """
-    from scipy.stats import chi2
-
     if total_time < 0 or failures < 0:
         raise InputError(
             f"MTBF needs T >= 0 and r >= 0, got T={total_time}, r={failures}."
         )
+    mtbf, lower, upper = mtbf_chi_square_bounds_arrays(
+        np.array([total_time], float), np.array([failures], int), confidence)
+    return float(mtbf[0]), float(lower[0]), float(upper[0])
+
+
+def mtbf_chi_square_bounds_arrays(
+    total_time_h: np.ndarray, failures: np.ndarray, confidence: float = 0.90
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`mtbf_chi_square_bounds` for many systems at once (T >= 0 and r >= 0 assumed).
+
+    One vectorised ``chi2.ppf`` per bound instead of two scalar calls per system (the scalar
+    calls were a fifth of :func:`uptime` on a 2,679-system fleet).
+    """
+    from scipy.stats import chi2
+
+    t = np.asarray(total_time_h, float)
+    r = np.asarray(failures, int)
     a = 1 - confidence
-    lower = 2 * total_time / chi2.ppf(1 - a / 2, 2 * failures + 2)
-    if failures == 0:
-        return math.inf, lower, math.inf
-    upper = 2 * total_time / chi2.ppf(a / 2, 2 * failures)
-    return total_time / failures, lower, upper
+    lower = 2 * t / chi2.ppf(1 - a / 2, 2 * r + 2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        upper = np.where(r > 0, 2 * t / chi2.ppf(a / 2, np.maximum(2 * r, 1)), math.inf)
+        mtbf = np.where(r > 0, t / np.maximum(r, 1), math.inf)
+    return mtbf, lower, upper
 
 
 def classify_downtime(
@@ -198,9 +213,17 @@ def uptime(
     edges = period_edges(start, end, period)
     edges_dt = np.array(edges, dtype="datetime64[ns]")
     edges_ns = edges_dt.astype(np.int64)
-    sys_tab = systems.set_index("system_id") if len(systems) else pd.DataFrame()
+    def per_system(column: str) -> dict:
+        if not len(systems) or column not in systems.columns:
+            return {}
+        return dict(zip(systems["system_id"], systems[column], strict=True))
+
+    sched_of, target_of = per_system("scheduled_hours_per_week"), per_system("uptime_target_pct")
+    site_of = per_system("site")
     ids = sorted(set(systems["system_id"]) | set(d["system_id"] if len(d) else []))
-    period_parts, sys_rows, episodes = [], [], []
+    period_parts, sys_rows = [], []
+    ep_parts: dict[str, list[np.ndarray]] = {"s": [], "e": [], "tube": [], "system_id": []}
+    up_hours, n_failures = [], []
     sched_missing = 0
     n_p = len(edges) - 1
     cal_h = np.diff(edges_ns) / 1e9 / _H  # calendar hours per period
@@ -208,21 +231,12 @@ def uptime(
     by_sys = {k: g for k, g in d.groupby("system_id", sort=False)} if len(d) else {}
     empty = d.iloc[0:0] if len(d) else d
     for sid in ids:
-        info = sys_tab.loc[sid] if sid in sys_tab.index else None
-        sched = (
-            float(info["scheduled_hours_per_week"])
-            if info is not None and pd.notna(info.get("scheduled_hours_per_week"))
-            else math.nan
-        )
+        sched = float(sched_of[sid]) if pd.notna(sched_of.get(sid)) else math.nan
         if not math.isfinite(sched):
             sched_missing += 1
             sched = 168.0
-        target = (
-            float(info["uptime_target_pct"])
-            if info is not None and pd.notna(info.get("uptime_target_pct"))
-            else math.nan
-        )
-        site = info["site"] if info is not None and "site" in info else None
+        target = float(target_of[sid]) if pd.notna(target_of.get(sid)) else math.nan
+        site = site_of.get(sid)
         recs = by_sys.get(sid, empty)
         if len(recs):
             rs = np.clip(recs["start_utc"].to_numpy(dtype="datetime64[ns]").astype(np.int64),
@@ -298,13 +312,16 @@ def uptime(
             last = np.r_[first[1:], cs.size] - 1
             ep_s, ep_e = cs[first], ce[last]
             ep_t = np.logical_or.reduceat(ct, first)
-            episodes.append(pd.DataFrame({"s": ep_s, "e": ep_e, "tube": ep_t, "system_id": sid}))
+            for key, values in (("s", ep_s), ("e", ep_e), ("tube", ep_t),
+                                ("system_id", np.full(r, sid, dtype=object))):
+                ep_parts[key].append(values)
         else:
             ep_s = ep_e = np.zeros(0, np.int64)
             ep_t = np.zeros(0, bool)
         tot = {k: float(v.sum()) for k, v in seg.items()}
         up_h = tot["h"] - tot["hard"] - tot["prev"] - tot["ext"]
-        mtbf, lo, hi = mtbf_chi_square_bounds(up_h, r, confidence)
+        up_hours.append(up_h)
+        n_failures.append(r)
         req_wall_t = tot["h"] - tot["prev"] - tot["ext"]
         sys_rows.append(
             {
@@ -328,9 +345,9 @@ def uptime(
                 "failures": r,
                 "tube_failures": int(ep_t.sum()),
                 "up_h": up_h,
-                "mtbf_h": mtbf,
-                "mtbf_lower_h": lo,
-                "mtbf_upper_h": hi,
+                "mtbf_h": math.nan,  # all systems at once below
+                "mtbf_lower_h": math.nan,
+                "mtbf_upper_h": math.nan,
                 "mttr_h": float(((ep_e - ep_s) / 1e9 / _H).mean()) if r else math.nan,
                 "confidence": confidence,
             }
@@ -343,6 +360,13 @@ def uptime(
         else pd.DataFrame()
     )
     summary = pd.DataFrame(sys_rows)
+    if len(summary):
+        up_arr = np.asarray(up_hours, float)
+        if (up_arr < 0).any():
+            i = int(np.argmax(up_arr < 0))
+            raise InputError(f"MTBF needs T >= 0: system {ids[i]} has {up_arr[i]} h up.")
+        (summary["mtbf_h"], summary["mtbf_lower_h"],
+         summary["mtbf_upper_h"]) = mtbf_chi_square_bounds_arrays(up_arr, np.asarray(n_failures), confidence)
     for f in (periods, summary):
         if len(f):
             f["margin_pct"] = f["availability_pct"] - f["uptime_target_pct"]
@@ -355,8 +379,8 @@ def uptime(
             "24/7 (168 h per week)."
         )
     eps = (
-        pd.concat(episodes, ignore_index=True)
-        if episodes
+        pd.DataFrame({k: np.concatenate(v) for k, v in ep_parts.items()})
+        if ep_parts["s"]
         else pd.DataFrame(columns=["system_id", "s", "e", "tube"])
     )
     if len(eps):
