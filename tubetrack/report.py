@@ -596,13 +596,51 @@ def _render_job(job: tuple[str, Path]) -> list[Path]:
 
 
 def render_images(jobs: list[tuple[str, Path]]) -> list[Path]:
-    """Write PNG + SVG for each (spec JSON, path stem), one after the other.
-
-    vl-convert renders one chart at a time per process and threads do not overlap; a process
-    pool was measured no faster on a loaded two-core machine, so images stay sequential and
-    their number is bounded instead (fleet charts plus ``tube_images`` tubes).
-    """
+    """Write PNG + SVG for each (spec JSON, path stem), one after the other."""
     return [p for job in jobs for p in _render_job(job)]
+
+
+class _BackgroundImages:
+    """Chart images rendered in ONE background process while this process writes the pages.
+
+    vl-convert renders one chart at a time per process and threads do not overlap, and a pool
+    splitting the images was measured no faster on a loaded two-core machine (each process pays
+    the renderer's start). One process running beside the page writing overlaps the two instead.
+    The process is forked before this process has started the renderer or the page writer's
+    threads (a spawned one would re-import the caller's main module, which library callers
+    need not guard). Where no process can be forked, images are rendered here at
+    :meth:`results`, as before.
+    """
+
+    def __init__(self) -> None:
+        self._pool: Any = None
+        self._futures: list[Any] = []
+        self._inline: list[tuple[str, Path]] = []
+
+    def submit(self, jobs: list[tuple[str, Path]]) -> None:
+        if not jobs:
+            return
+        if self._pool is None and not self._inline:
+            try:
+                import multiprocessing
+                from concurrent.futures import ProcessPoolExecutor
+
+                self._pool = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("fork"))
+            except (OSError, ImportError, ValueError):  # ValueError: no fork on this platform
+                self._pool = None
+        if self._pool is None:
+            self._inline.extend(jobs)
+            return
+        self._futures.extend(self._pool.submit(_render_job, job) for job in jobs)
+
+    def results(self) -> list[Path]:
+        """Every written image path, in submission order (waits for the background process)."""
+        try:
+            done = [p for f in self._futures for p in f.result()]
+        finally:
+            if self._pool is not None:
+                self._pool.shutdown(wait=True, cancel_futures=True)
+        return done + render_images(self._inline)
 
 
 def _grouped_json(frame: pd.DataFrame, keys: list[str], columns: list[str]) -> dict[tuple, str]:
@@ -705,13 +743,22 @@ def write_report(
     thr, thr_lo, thr_hi = _threshold_bounds(inputs)
     overview = tube_overview(inputs, pages)
 
+    image_jobs: list[tuple[str, Path]] = []
+    fleet_images: dict[str, dict[str, str]] = {}
+    background = _BackgroundImages()  # each chart's images render while the next is built
+
     def add(section: str, chart_id: str, builder: Any, caption: str) -> None:
         try:
             chart = builder()
         except (ValueError, KeyError) as exc:  # a result frame without the expected columns
             fleet_blocks.append((section, chart_id, "", f"Chart not drawn: {exc}"))
             return
-        fleet_blocks.append((section, chart_id, _spec_json(chart), caption))
+        spec_json = _spec_json(chart)
+        fleet_blocks.append((section, chart_id, spec_json, caption))
+        if images:
+            image_jobs.append((spec_json, out / "img" / chart_id))
+            background.submit(image_jobs[-1:])
+            fleet_images[chart_id] = {"png": f"img/{chart_id}.png", "svg": f"img/{chart_id}.svg"}
 
     if _nonempty(overview):
         add("overview", "fleet-overview", lambda: C.fleet_overview_chart(overview, inputs.horizon_days),
@@ -765,14 +812,10 @@ def write_report(
             "Forecast probabilities of end of life against the observed fraction (95 % Wilson intervals).")
     timings["fleet_charts_s"] = time.perf_counter() - t0
 
-    image_jobs: list[tuple[str, Path]] = []
-    fleet_images: dict[str, dict[str, str]] = {}
-    if images:
-        for _section, chart_id, spec_json, _cap in fleet_blocks:
-            if not spec_json:
-                continue
-            image_jobs.append((spec_json, out / "img" / chart_id))
-            fleet_images[chart_id] = {"png": f"img/{chart_id}.png", "svg": f"img/{chart_id}.svg"}
+
+    def add_image(job: tuple[str, Path]) -> None:  # the riskiest tubes' drift charts, as they come
+        image_jobs.append(job)
+        background.submit([job])
 
     bundle = js_bundle()
     fleet_html = _fleet_body(inputs, fleet_blocks, fleet_images, overview, pages)
@@ -797,13 +840,13 @@ def write_report(
     # ---------------- tube pages
     t0 = time.perf_counter()
     tube_paths = _write_tube_pages(inputs, out, wanted, pages, meta, footer, bundle, js, images,
-                                   tube_images, image_jobs, say)
+                                   tube_images, add_image, say)
     timings["tube_pages_s"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     if image_jobs:
         say(f"writing {2 * len(image_jobs)} chart images (PNG + SVG) ...")
-        written_images.extend(render_images(image_jobs))
-    timings["images_s"] = time.perf_counter() - t0
+    written_images.extend(background.results())
+    timings["images_s"] = time.perf_counter() - t0  # the wait after the pages
     return ReportFiles(
         fleet_html=fleet_path,
         tube_pages=tuple(tube_paths),
@@ -941,7 +984,7 @@ def _fleet_body(inputs: ReportInputs, blocks: list[tuple[str, str, str, str]], i
 
 def _write_tube_pages(inputs: ReportInputs, out: Path, wanted: list[str], pages: dict[str, str], meta: str,
                       footer: str, bundle: str, js: str, images: bool, tube_images: int,
-                      image_jobs: list[tuple[str, Path]], say: Any) -> list[Path]:
+                      add_image: Any, say: Any) -> list[Path]:
     import pandas as pd
 
     from tubetrack import charts as C
@@ -1088,7 +1131,7 @@ def _write_tube_pages(inputs: ReportInputs, out: Path, wanted: list[str], pages:
             img_links = None
             if tube in image_tubes:
                 stem = f"{page_stem(tube)}-{_SLUG.sub('_', focal)}-drift"
-                image_jobs.append((spec_text, out / "img" / "tubes" / stem))
+                add_image((spec_text, out / "img" / "tubes" / stem))
                 img_links = {"png": f"../img/tubes/{stem}.png", "svg": f"../img/tubes/{stem}.svg"}
             chart_html.append(f"<h3>{esc(focal.capitalize())} focal spot</h3>" + _chart_block(
                 chart_id, spec_text,
