@@ -154,3 +154,26 @@ def test_every_connection_caps_duckdb_memory(monkeypatch, tmp_path):
     monkeypatch.setenv("TUBETRACK_MEMORY", "lots")
     with pytest.raises(StoreError, match="TUBETRACK_MEMORY is 'lots'"):
         store.connect(tmp_path / "a.duckdb")
+
+
+def _duckdb_bytes(con) -> int:
+    return int(con.execute("SELECT sum(memory_usage_bytes) FROM duckdb_memory()").fetchone()[0])
+
+
+def test_release_memory_drops_cached_blocks_and_keeps_the_cap(db_path, monkeypatch):
+    monkeypatch.setenv(store.ENV_MEMORY, "512MB")
+    con = store.connect(db_path)
+    cap = con.execute("SELECT current_setting('memory_limit')").fetchone()[0]
+    con.execute("CREATE TABLE big AS SELECT range AS i, random() AS x FROM range(12000000)")
+    con.execute("CHECKPOINT")
+    con.execute("SELECT sum(x), sum(i) FROM big").fetchall()  # pulls its blocks into the cache
+    held = _duckdb_bytes(con)
+    store.release_memory(con)
+    assert held > 64 << 20 and _duckdb_bytes(con) <= 32 << 20  # the 32MB of the moment
+    assert con.execute("SELECT current_setting('memory_limit')").fetchone()[0] == cap
+    with store.capped_memory(con, "64MB"):
+        assert con.execute("SELECT current_setting('memory_limit')").fetchone()[0] == "61.0 MiB"
+        con.execute("CREATE TABLE copy AS SELECT * FROM big")
+    assert con.execute("SELECT count(*) FROM copy").fetchone()[0] == 12_000_000
+    assert con.execute("SELECT current_setting('memory_limit')").fetchone()[0] == cap
+    con.close()

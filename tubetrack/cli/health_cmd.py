@@ -55,6 +55,10 @@ BACKTEST_HELP = (
 )
 
 
+#: DuckDB's cap while the health tables are written (the frames are already in this process).
+HEALTH_WRITE_MEMORY = "256MB"
+
+
 def _analyse(db: Any, as_of: str | None, quiet: bool):
     from tubetrack import store
     from tubetrack.health.api import analyse_fleet
@@ -66,9 +70,10 @@ def _analyse(db: Any, as_of: str | None, quiet: bool):
     stderr("analysing tubes ...", quiet)
     result = analyse_fleet(con, as_of=cut, params=params)
     # one transaction for the whole set: an interrupted run leaves the previous results
-    store.write_result_set(
-        con, result.tables(), kind="health", as_of=result.as_of, params=result.params
-    )
+    with store.capped_memory(con, HEALTH_WRITE_MEMORY):
+        store.write_result_set(
+            con, result.tables(), kind="health", as_of=result.as_of, params=result.params
+        )
     return con, result
 
 

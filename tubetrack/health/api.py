@@ -17,7 +17,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
-from tubetrack import __version__
+from tubetrack import __version__, store
 from tubetrack.health import sql
 from tubetrack.health.drift import as_datetime
 from tubetrack.health.forecast import (
@@ -494,6 +494,7 @@ def analyse_fleet(
         lo = ids[i] if i > 0 else None
         hi = ids[i + CHUNK_TUBES] if i + CHUNK_TUBES < len(ids) else None
         d = _before(sql.load_daily_tubes(con, cut, lo, hi), cut_ts)
+        store.release_memory(con)  # the next chunk reads other row groups: keep one query's worth
         return _tasks(_split_by_tube(d), known.iloc[i:i + CHUNK_TUBES], cut_ts, p, cal_by, ev_by, metas)
 
     results: list[dict[str, Any]] = []
