@@ -490,7 +490,7 @@ def render_markdown(ds: Dataset, results: list[Result], info: dict[str, str], ar
         "Figures: median wall time over the successful runs (`n`); `cpu s` the median user + system "
         "CPU time of the step's processes (steadier than wall time on a shared machine); `peak MiB` is the largest single "
         "process (ru_maxrss via `/usr/bin/time -v`), `tree MiB` the largest sampled sum over the "
-        "step's process tree (worker pools, Spark's JVM; pages shared after fork count once per process). `ratio` = median / floor median, measured in "
+        "step's process tree (worker pools, Spark's JVM) of proportional set sizes (a page shared after fork counts once in the sum). `ratio` = median / floor median, measured in "
         "this run on the same files.",
         "",
     ]
