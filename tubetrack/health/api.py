@@ -511,8 +511,11 @@ def analyse_fleet(
                 results.extend(running)
 
             def mapper(function: Callable[[Any], Any], items: list[Any]) -> Any:
-                # the workers were forked before the results arrived: they hold none of them
-                return pool.map(function, items, chunksize=max(1, len(items) // (p.workers * 8)))
+                # the workers were forked before the results arrived: they hold none of them.
+                # Their last job: the pool is shut down before the result tables are joined.
+                out = list(pool.map(function, items, chunksize=max(1, len(items) // (p.workers * 8))))
+                pool.shutdown(wait=True)
+                return out
 
             return _fleet_step(results, metas, known, cut_ts, p, None, mapper)
     return _fleet_step(results, metas, known, cut_ts, p, None)
