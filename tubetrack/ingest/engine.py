@@ -943,12 +943,13 @@ def ingest_batch(
             "CREATE OR REPLACE TEMP TABLE _tt_batch (idx INTEGER, fname VARCHAR, shown VARCHAR, "
             "off BIGINT, n BIGINT)"
         )
-        con.executemany(
-            "INSERT INTO _tt_batch VALUES (?, ?, ?, ?, ?)",
-            [
-                [i, str(path), shown, offsets[i], counts[i]]
-                for i, (path, shown) in enumerate(items)
-            ],
+        # one statement from list parameters (executemany ran one insert per file: 0.14 s per
+        # batch of 256 files on the bench, 1.5 s over its 2,684 files)
+        con.execute(
+            "INSERT INTO _tt_batch SELECT unnest(?::INTEGER[]), unnest(?::VARCHAR[]), "
+            "unnest(?::VARCHAR[]), unnest(?::BIGINT[]), unnest(?::BIGINT[])",
+            [list(range(len(items))), [str(path) for path, _ in items],
+             [shown for _, shown in items], offsets, counts],
         )
         typed_from = typed_csv_sql(
             src, fast_types(kind, mapped), p, [path for path, _ in items]
@@ -1051,19 +1052,23 @@ def ingest_batch(
                     finished,
                 ]
             )
-        ids = []
-        for r in rows:
-            ids.append(
-                int(
-                    con.execute(
-                        "INSERT INTO ingest_files (path, sha256, table_kind, profile, status, "
-                        "started_at_utc, rows_read, rows_accepted, rows_rejected, "
-                        "rows_duplicate, finished_at_utc) VALUES (?, ?, ?, NULL, ?, ?, ?, ?, "
-                        "0, ?, ?) RETURNING file_id",
-                        r,
-                    ).fetchone()[0]
-                )
-            )
+        # one statement for the batch's files (one insert per file took 2.3 s over the bench's
+        # 2,684 files); ids are drawn in file order, as one insert per file drew them
+        got_ids = dict(
+            con.execute(
+                "INSERT INTO ingest_files (path, sha256, table_kind, profile, status, "
+                "started_at_utc, rows_read, rows_accepted, rows_rejected, rows_duplicate, "
+                "finished_at_utc) SELECT path, sha, ?, NULL, ?, ?, n_read, n_ok, 0, n_dup, ? "
+                "FROM (SELECT unnest(?::VARCHAR[]) AS path, unnest(?::VARCHAR[]) AS sha, "
+                "unnest(?::BIGINT[]) AS n_read, unnest(?::BIGINT[]) AS n_ok, "
+                "unnest(?::BIGINT[]) AS n_dup, unnest(?::INTEGER[]) AS i) ORDER BY i "
+                "RETURNING path, file_id",
+                [kind.name, STATUS_INGESTED, started, finished, [r[0] for r in rows],
+                 [r[1] for r in rows], [r[5] for r in rows], [r[6] for r in rows],
+                 [r[7] for r in rows], list(range(len(rows)))],
+            ).fetchall()
+        )
+        ids = [int(got_ids[r[0]]) for r in rows]
         for r, fid in zip(rows, ids, strict=True):
             msg = message
             if r[5] == 0:
