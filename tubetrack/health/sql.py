@@ -26,9 +26,22 @@ if TYPE_CHECKING:  # pragma: no cover
 #: Relative miss of the measured against the set tube current that counts as a regulation miss.
 MA_MISS_TOLERANCE = 0.10  # common practice (acceptance tests often allow +-10 % to +-20 % of set mA)
 
+def _attributed(alias: str) -> str:
+    """Join condition of tube ``t`` to a row ``alias`` that names no tube: the tube of the row's
+    system installed at the row's time (the rule of the store's ``v_exposures`` view)."""
+    return (f"{alias}.tube_id IS NULL AND t.system_id = {alias}.system_id "
+            f"AND {alias}.timestamp_utc >= t.installed_at_utc "
+            f"AND (t.removed_at_utc IS NULL OR {alias}.timestamp_utc < t.removed_at_utc)")
+
+
+def daily_sql(source: str = "v_exposures") -> str:
+    """``DAILY_SQL`` over another FROM item with v_exposures' columns (e.g. one chunk's rows)."""
+    return _DAILY_TEMPLATE.replace("{source}", source)
+
+
 #: Per tube x focal spot x mA station x day statistics of the exposures before ``as_of``.
 #: Parameters: as_of (TIMESTAMP or NULL) twice, the regulation-miss tolerance.
-DAILY_SQL = """
+_DAILY_TEMPLATE = """
 WITH x AS (
     SELECT
         tube_id,
@@ -46,7 +59,7 @@ WITH x AS (
         prep_time_s,
         arc_count,
         tube_current_measured_ma
-    FROM v_exposures
+    FROM {source}
     WHERE tube_id IS NOT NULL
       AND (CAST(? AS TIMESTAMP) IS NULL OR timestamp_utc < CAST(? AS TIMESTAMP))
 )
@@ -79,17 +92,14 @@ FROM x
 GROUP BY tube_id, focal_spot, tube_current_ma, day
 ORDER BY tube_id, focal_spot, tube_current_ma, day
 """
+DAILY_SQL = daily_sql()
 
 #: Per tube x focal spot x station x day statistics of exported filament tables (calibrations).
-CALIBRATION_SQL = """
+CALIBRATION_SQL = f"""
 WITH c AS (
     SELECT COALESCE(c.tube_id, t.tube_id) AS tube_id, c.*  EXCLUDE (tube_id)
     FROM calibrations c
-    LEFT JOIN tubes t
-      ON c.tube_id IS NULL
-     AND t.system_id = c.system_id
-     AND c.timestamp_utc >= t.installed_at_utc
-     AND (t.removed_at_utc IS NULL OR c.timestamp_utc < t.removed_at_utc)
+    LEFT JOIN tubes t ON {_attributed("c")}
     WHERE (CAST(? AS TIMESTAMP) IS NULL OR c.timestamp_utc < CAST(? AS TIMESTAMP))
 )
 SELECT
@@ -111,15 +121,11 @@ ORDER BY tube_id, focal_spot, tube_current_ma, day
 """
 
 #: Fault events per tube x category x day.
-EVENTS_SQL = """
+EVENTS_SQL = f"""
 WITH e AS (
     SELECT COALESCE(e.tube_id, t.tube_id) AS tube_id, e.category, e.timestamp_utc
     FROM events e
-    LEFT JOIN tubes t
-      ON e.tube_id IS NULL
-     AND t.system_id = e.system_id
-     AND e.timestamp_utc >= t.installed_at_utc
-     AND (t.removed_at_utc IS NULL OR e.timestamp_utc < t.removed_at_utc)
+    LEFT JOIN tubes t ON {_attributed("e")}
     WHERE (CAST(? AS TIMESTAMP) IS NULL OR e.timestamp_utc < CAST(? AS TIMESTAMP))
 )
 SELECT tube_id, category, CAST(timestamp_utc AS DATE) AS day, count(*) AS n_events
@@ -193,11 +199,11 @@ def load_daily_tubes(
     """
     if first_tube is None and end_tube is None:
         return load_daily(con, as_of, ma_miss_tolerance)
+    ops = [op for op, b in ((">=", first_tube), ("<", end_tube)) if b is not None]
     bounds = [str(b) for b in (first_tube, end_tube) if b is not None]
 
     def in_chunk(column: str) -> str:
-        cond = [f"{column} >= ?"] if first_tube is not None else []
-        return " AND ".join([*cond, f"{column} < ?"] if end_tube is not None else cond)
+        return " AND ".join(f"{column} {op} ?" for op in ops)
 
     # v_exposures' tube_id is COALESCE(logged, resolved): a filter on it reaches no zone map, so
     # every chunk would scan the whole table. The two branches filter the stored columns instead
@@ -207,13 +213,11 @@ def load_daily_tubes(
     source = f"""(
     SELECT e.* FROM exposures e WHERE e.tube_id IS NOT NULL AND {in_chunk("e.tube_id")}
     UNION ALL
-    SELECT e.* REPLACE (t.tube_id AS tube_id) FROM exposures e JOIN tubes t
-      ON t.system_id = e.system_id AND e.timestamp_utc >= t.installed_at_utc
-     AND (t.removed_at_utc IS NULL OR e.timestamp_utc < t.removed_at_utc)
-    WHERE e.tube_id IS NULL AND {in_chunk("t.tube_id")}
-)"""
-    query = DAILY_SQL.replace("FROM v_exposures", f"FROM {source} AS chunk", 1)
-    return con.execute(query, [*bounds, *bounds, *_twice(as_of), float(ma_miss_tolerance)]).df()
+    SELECT e.* REPLACE (t.tube_id AS tube_id) FROM exposures e JOIN tubes t ON {_attributed("e")}
+    WHERE {in_chunk("t.tube_id")}
+) AS chunk"""
+    return con.execute(daily_sql(source),
+                       [*bounds, *bounds, *_twice(as_of), float(ma_miss_tolerance)]).df()
 
 
 def load_calibrations(con: duckdb.DuckDBPyConnection, as_of: datetime | None = None) -> pd.DataFrame:
