@@ -208,7 +208,7 @@ def emit_rows(
     :func:`emit` of the equivalent DataFrame.
     """
     cols = list(all_columns)
-    plain = [{c: _clean_plain(r.get(c)) for c in cols} for r in rows]
+    plain = [{c: _clean(r.get(c)) for c in cols} for r in rows]  # plain values: no pandas
     if fmt is OutputFormat.json:
         sys.stdout.write(json.dumps(plain, default=_json_default, indent=1) + "\n")
         return
@@ -221,12 +221,6 @@ def emit_rows(
         return
     shown = cols if columns is None else [c for c in columns if c in cols]
     _print_table(shown, ([r[c] for c in shown] for r in plain), title, float_digits)
-
-
-def _clean_plain(value: Any) -> Any:
-    if isinstance(value, float) and (math.isnan(value) or math.isinf(value)):
-        return None
-    return value
 
 
 def _print_table(
