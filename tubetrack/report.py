@@ -614,13 +614,13 @@ class _BackgroundImages:
 
     def __init__(self) -> None:
         self._pool: Any = None
+        self._tried = False  # whether a process was asked for (once, at the first job)
         self._futures: list[Any] = []
         self._inline: list[tuple[str, Path]] = []
 
     def submit(self, jobs: list[tuple[str, Path]]) -> None:
-        if not jobs:
-            return
-        if self._pool is None and not self._inline:
+        if jobs and not self._tried:
+            self._tried = True
             try:
                 import multiprocessing
                 from concurrent.futures import ProcessPoolExecutor
@@ -630,8 +630,8 @@ class _BackgroundImages:
                 self._pool = None
         if self._pool is None:
             self._inline.extend(jobs)
-            return
-        self._futures.extend(self._pool.submit(_render_job, job) for job in jobs)
+        else:
+            self._futures.extend(self._pool.submit(_render_job, job) for job in jobs)
 
     def results(self) -> list[Path]:
         """Every written image path, in submission order (waits for the background process)."""
@@ -747,6 +747,10 @@ def write_report(
     fleet_images: dict[str, dict[str, str]] = {}
     background = _BackgroundImages()  # each chart's images render while the next is built
 
+    def add_image(job: tuple[str, Path]) -> None:
+        image_jobs.append(job)
+        background.submit([job])
+
     def add(section: str, chart_id: str, builder: Any, caption: str) -> None:
         try:
             chart = builder()
@@ -756,8 +760,7 @@ def write_report(
         spec_json = _spec_json(chart)
         fleet_blocks.append((section, chart_id, spec_json, caption))
         if images:
-            image_jobs.append((spec_json, out / "img" / chart_id))
-            background.submit(image_jobs[-1:])
+            add_image((spec_json, out / "img" / chart_id))
             fleet_images[chart_id] = {"png": f"img/{chart_id}.png", "svg": f"img/{chart_id}.svg"}
 
     if _nonempty(overview):
@@ -812,11 +815,6 @@ def write_report(
             "Forecast probabilities of end of life against the observed fraction (95 % Wilson intervals).")
     timings["fleet_charts_s"] = time.perf_counter() - t0
 
-
-    def add_image(job: tuple[str, Path]) -> None:  # the riskiest tubes' drift charts, as they come
-        image_jobs.append(job)
-        background.submit([job])
-
     bundle = js_bundle()
     fleet_html = _fleet_body(inputs, fleet_blocks, fleet_images, overview, pages)
     fleet_path = out / "fleet.html"
@@ -839,6 +837,7 @@ def write_report(
 
     # ---------------- tube pages
     t0 = time.perf_counter()
+    # the riskiest tubes' drift charts are submitted as their pages are built
     tube_paths = _write_tube_pages(inputs, out, wanted, pages, meta, footer, bundle, js, images,
                                    tube_images, add_image, say)
     timings["tube_pages_s"] = time.perf_counter() - t0
