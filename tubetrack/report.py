@@ -1025,8 +1025,8 @@ def _write_tube_pages(inputs: ReportInputs, out: Path, wanted: list[str], pages:
     keys = ["tube_id", "focal_spot"]
     grouped = {
         "drift_points": _grouped_json(obs, keys, C.DRIFT_COLUMNS["drift_points"]) if len(obs) else {},
-        "drift_diameter": _grouped_json(_thin_groups(dia, keys), keys, C.DRIFT_COLUMNS["drift_diameter"]) if len(dia) else {},
-        "drift_projection": _grouped_json(_thin_groups(proj, keys), keys, C.DRIFT_COLUMNS["drift_projection"]) if len(proj) else {},
+        "drift_diameter": _grouped_json(_thin_groups(dia, keys, C.health.MAX_POINTS_PER_SERIES), keys, C.DRIFT_COLUMNS["drift_diameter"]) if len(dia) else {},
+        "drift_projection": _grouped_json(_thin_groups(proj, keys, C.health.MAX_POINTS_PER_SERIES), keys, C.DRIFT_COLUMNS["drift_projection"]) if len(proj) else {},
         "drift_changes": _grouped_json(cps, keys, C.DRIFT_COLUMNS["drift_changes"]) if len(cps) else {},
     }
     thr_frame = pd.DataFrame({"threshold_pct": [thr], "threshold_lo_pct": [thr if thr_lo is None else thr_lo],

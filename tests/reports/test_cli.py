@@ -98,3 +98,44 @@ def test_report_help_mentions_safety():
     res = runner.invoke(app, ["report", "--help"])
     assert res.exit_code == 0
     assert "qualified" in res.output and "--no-images" in res.output
+
+
+@pytest.mark.parametrize("table", ["result_health_diameter", "result_health_projection"])
+def test_stored_series_thinned_in_sql_like_the_pages(tmp_path, table):
+    """The report reads daily series thinned in SQL; it must keep exactly the rows the tube pages
+    would keep from the whole table (``_thin_groups``), evenly spaced, first and last day kept."""
+    import numpy as np
+
+    from tubetrack.charts.health import MAX_POINTS_PER_SERIES
+    from tubetrack.cli.report_cmd import _read_thinned
+    from tubetrack.report import _thin_groups
+
+    lengths = {"A": 1, "B": MAX_POINTS_PER_SERIES - 1, "C": MAX_POINTS_PER_SERIES,
+               "D": MAX_POINTS_PER_SERIES + 1, "E": 517, "F": 3001}
+    rng = np.random.default_rng(3)
+    parts = []
+    for tube, n in lengths.items():
+        for focal in ("large", "small"):
+            days = pd.date_range("2022-01-01", periods=n, freq="D")
+            parts.append(pd.DataFrame({"tube_id": tube, "focal_spot": focal, "day": days,
+                                       "diameter_loss_pct": rng.normal(size=n),
+                                       "diameter_loss_pct_lo": 0.0, "diameter_loss_pct_hi": 1.0}))
+    whole = pd.concat(parts, ignore_index=True).sample(frac=1.0, random_state=1)  # stored unordered
+    con = store.connect(tmp_path / "thin.duckdb")
+    try:
+        store.write_results(con, table, whole, kind="health")
+        got = _read_thinned(con, table)
+        stored = store.read_results(con, table)
+    finally:
+        con.close()
+    want = _thin_groups(stored, ["tube_id", "focal_spot"], MAX_POINTS_PER_SERIES)
+    cols = ["tube_id", "focal_spot", "day", "diameter_loss_pct"]
+    pd.testing.assert_frame_equal(got[cols].reset_index(drop=True), want[cols].reset_index(drop=True))
+    for (tube, _focal), g in got.groupby(["tube_id", "focal_spot"]):
+        n = lengths[tube]
+        pos = ((g["day"] - pd.Timestamp("2022-01-01")).dt.days).to_numpy()
+        assert len(g) == min(n, MAX_POINTS_PER_SERIES)
+        assert pos[0] == 0 and pos[-1] == n - 1
+        gaps = np.diff(pos[:-1])  # the last row is always kept, so its gap may be short
+        if len(gaps):
+            assert gaps.max() - gaps.min() <= 1

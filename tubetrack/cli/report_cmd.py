@@ -74,6 +74,22 @@ GROUP BY ALL
 ORDER BY tube_id, focal_spot, tube_current_ma, day
 """
 
+# Per (tube, focal spot) series, keep at most ``?`` evenly spaced days: the rule of
+# ``report._thin_groups`` (row k of n is kept where floor(k / step) changes, step =
+# max(1, (n - 1) / (max_points - 1)), and the last row always), so the tube pages get the
+# same rows as from the whole table while the report reads ~160 rows per series, not millions.
+THINNED_SERIES_SQL = """
+SELECT * EXCLUDE (pos_, n_, step_) FROM (
+    SELECT *, greatest(1.0, (n_ - 1) / CAST(? - 1 AS DOUBLE)) AS step_ FROM (
+        SELECT *, row_number() OVER (PARTITION BY tube_id, focal_spot ORDER BY day) - 1 AS pos_,
+               count(*) OVER (PARTITION BY tube_id, focal_spot) AS n_
+        FROM {table}
+    )
+)
+WHERE pos_ = n_ - 1 OR floor(pos_ / step_) <> floor((pos_ - 1) / step_)
+ORDER BY tube_id, focal_spot, day
+"""
+
 FAULT_RATES_SQL = """
 WITH tubes_t AS (SELECT tube_id, system_id, installed_at_utc, removed_at_utc FROM tubes),
 ev AS (
@@ -148,7 +164,8 @@ def _health_tables(con: duckdb.DuckDBPyConnection, as_of: datetime | None, say: 
              "result_health_projection", "result_health_changepoints")
     stored = as_of is None and _exists(con, "result_health")
     if stored:
-        out: dict[str, pd.DataFrame | None] = {n: _read(con, n) for n in names}
+        out: dict[str, pd.DataFrame | None] = {n: _read(con, n) for n in names if n not in _THINNED}
+        out.update({n: _read_thinned(con, n) for n in _THINNED})
         out["result_health_drift"] = None  # binned in SQL below
         out["_drift_from_store"] = True  # type: ignore[assignment]
         return out
@@ -168,6 +185,19 @@ def _health_tables(con: duckdb.DuckDBPyConnection, as_of: datetime | None, say: 
     if sd is not None:
         out["_threshold_sd_pct"] = 100.0 * float(sd)  # type: ignore[assignment]
     return out
+
+
+_THINNED = ("result_health_diameter", "result_health_projection")
+
+
+def _read_thinned(con: duckdb.DuckDBPyConnection, table: str) -> pd.DataFrame | None:
+    """A stored daily series table thinned in SQL to the points the charts draw per series."""
+    from tubetrack.charts.health import MAX_POINTS_PER_SERIES
+
+    if not _exists(con, table):
+        return None
+    frame = con.execute(THINNED_SERIES_SQL.format(table=table), [MAX_POINTS_PER_SERIES]).df()
+    return frame if len(frame) else None
 
 
 def _binned_drift(con: duckdb.DuckDBPyConnection, tube_ids: list[str] | None) -> pd.DataFrame | None:
