@@ -360,3 +360,29 @@ def test_batch_of_crlf_files_equals_file_by_file(tmp_path, monkeypatch):
             (H + "\r\n" + "".join(r + "\r\n" for r in rows)).encode()
         )
     assert _same_batch(d, monkeypatch)[0] == 3
+
+
+def test_batch_of_large_files_numbers_lines_in_scan_order(tmp_path, monkeypatch):
+    """Files large enough that DuckDB reads them on several threads: each row's line number
+    still follows its file's order (the batch numbers rows by the scan-ordered table's row ids)."""
+    import pandas as pd
+
+    d = tmp_path / "logs"
+    d.mkdir()
+    n = 60_000  # ~4 MB per file, several CSV buffers and row groups
+    t0 = pd.Timestamp("2024-01-01T00:00:00")
+    for f in range(4):
+        i = pd.RangeIndex(n)
+        stamps = (t0 + pd.to_timedelta(i + f * n, unit="s")).strftime("%Y-%m-%dT%H:%M:%SZ")
+        kv = 40 + (i % 97)
+        rows = stamps + f",S{f},T{f},small," + kv.astype(str) + ",200,,0.1,,4.1,,,"
+        _write(d, f"exposures-{f}.csv", H + "\n" + "\n".join(rows) + "\n")
+    taken = _same_batch(d, monkeypatch)
+    assert taken[0] == 4
+    con, _reps, _ = _run_batch(d, monkeypatch, True)
+    # line k of every file holds its (k - 2)-th row: kV = 40 + (k - 2) mod 97
+    bad = con.execute(
+        "SELECT count(*) FROM exposures WHERE tube_voltage_kv <> 40 + (source_line - 2) % 97"
+    ).fetchone()[0]
+    assert bad == 0
+    assert con.execute("SELECT count(*) FROM exposures").fetchone()[0] == 4 * n

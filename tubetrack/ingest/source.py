@@ -162,6 +162,7 @@ def typed_csv_sql(
     types: dict[str, str],
     p: Params,
     paths: list[Path] | None = None,
+    numbered: bool = True,
 ) -> str:
     """FROM item reading a CSV source with DuckDB types per column (``types``: file column ->
     SQL type, VARCHAR when absent), strictly: any malformed line or cell that does not convert
@@ -169,23 +170,23 @@ def typed_csv_sql(
 
     ``p`` must be the :class:`Params` the source was opened with (its path and options are bound
     there). ``paths``: read these files (all with the source's header) instead, in this order,
-    with their path in column ``_fname`` and ``_rec`` counting across them.
+    with their path in column ``_fname`` and ``_rec`` counting across them. ``numbered=False``
+    leaves out ``_rec``: its ``row_number() OVER ()`` keeps the whole scan on one thread, so a
+    caller that can number the rows otherwise (a scan-ordered table's row ids) reads in parallel.
     """
     assert src.fmt == "csv" and src.csv_path
     internal = {f"c{i}": types.get(c, "VARCHAR") for i, c in enumerate(src.columns)}
     opts = [*src.csv_opts, f"columns={p.add(internal)}", "ignore_errors=false"]
     renames = ", ".join(f"c{i} AS {qi(c)}" for i, c in enumerate(src.columns))
     where = src.csv_path
-    extra = ""
+    cols = ["row_number() OVER () AS _rec"] if numbered else []
     if paths is not None:
         # several files of one header in one scan; _fname tells which file a row came from
         where = p.add([str(x) for x in paths])
         opts.append("filename=true")
-        extra = ", filename AS _fname"
-    return (
-        f"(SELECT row_number() OVER () AS _rec{extra}, {renames} FROM "
-        f"read_csv({where}, {', '.join(opts)}))"
-    )
+        cols.append("filename AS _fname")
+    cols.append(renames)
+    return f"(SELECT {', '.join(cols)} FROM read_csv({where}, {', '.join(opts)}))"
 
 
 def _header_text(head: bytes, encoding: str) -> str:
