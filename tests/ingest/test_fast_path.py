@@ -386,3 +386,26 @@ def test_batch_of_large_files_numbers_lines_in_scan_order(tmp_path, monkeypatch)
     ).fetchone()[0]
     assert bad == 0
     assert con.execute("SELECT count(*) FROM exposures").fetchone()[0] == 4 * n
+
+
+def test_scan_ahead_gives_the_scan_of_each_file_and_its_errors(tmp_path):
+    """Scans queued on the background thread equal scans made in place (hashlib's sha256 of
+    the bytes, the line count), a file not queued is scanned on demand, a missing file raises."""
+    import hashlib
+
+    from tubetrack.ingest.reader import ScanAhead, scan_file
+
+    paths = []
+    for i in range(5):
+        text = H + "\n" + "".join(r + "\n" for r in _rows(10 * i, 3 + i))
+        paths.append(_write(tmp_path, f"exposures-{i}.csv", text))
+    with ScanAhead() as ahead:
+        ahead.prefetch(paths[:3] + [tmp_path / "gone.csv"])
+        ahead.prefetch(paths[:2])  # queued once
+        got = [ahead.get(p) for p in paths]
+        with pytest.raises(OSError):
+            ahead.get(tmp_path / "gone.csv")
+    for p, scan, i in zip(paths, got, range(5), strict=True):
+        assert scan == scan_file(p)
+        assert scan.sha256 == hashlib.sha256(p.read_bytes()).hexdigest()
+        assert scan.lines == 1 + 3 + i

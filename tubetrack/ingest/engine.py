@@ -840,6 +840,7 @@ def ingest_batch(
     items: list[tuple[Path, str]],
     *,
     now_utc: datetime | None = None,
+    scans_from: rd.ScanAhead | None = None,
 ) -> tuple[list[FileReport], int]:
     """Ingest a leading run of ``items`` (path, shown) in one scan and one transaction.
 
@@ -852,6 +853,9 @@ def ingest_batch(
     line count; duplicates are removed as the per-file path would in this file order (a key
     repeated within a file keeps its first line; a key already stored or in an earlier file of
     the run is a duplicate). Each file gets its own ``ingest_files`` row and report.
+
+    ``scans_from``: take the files' hash passes from there (scanned ahead while the previous
+    batch was in DuckDB) instead of scanning them here.
 
     Returns the reports of the files taken, in order, and how many files were tried. No
     reports when fewer than two files qualify (tried = 0) or anything failed (bad row, malformed
@@ -879,7 +883,7 @@ def ingest_batch(
             total_bytes += size
             if size > BATCH_MAX_BYTES or scans and total_bytes > BATCH_MAX_TOTAL_BYTES:
                 break
-            scan = rd.scan_file(path)
+            scan = scans_from.get(path) if scans_from is not None else rd.scan_file(path)
         except OSError:
             break
         first = scan.head.split(b"\n", 1)[0]

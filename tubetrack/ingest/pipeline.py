@@ -19,7 +19,7 @@ from tubetrack.errors import InputError
 from tubetrack.ingest.engine import Preview, ingest_batch, ingest_file
 from tubetrack.ingest.layout import KINDS, SKIP_NAME_PREFIXES, kind_from_name
 from tubetrack.ingest.profiles import Profile, folder_profiles, load_profile
-from tubetrack.ingest.reader import base_suffix, is_dicom, is_log_name
+from tubetrack.ingest.reader import ScanAhead, base_suffix, is_dicom, is_log_name
 from tubetrack.ingest.report import (
     REPORT_COLUMNS,
     STATUS_ALREADY,
@@ -246,6 +246,42 @@ def ingest_paths(
     reports: list[FileReport] = []
     previews: list[tuple[str, Preview]] = []
     dicom_jobs: list[_Job] = []
+    with ScanAhead() as ahead:
+        _ingest_jobs(con, jobs, kind, dry_run, progress, now_utc, preview_rows, ahead,
+                     reports, previews, dicom_jobs)
+    if dicom_jobs:
+        reports.extend(_ingest_dicom(con, dicom_jobs, dry_run, progress))
+    return IngestSummary(tuple(reports), tuple(previews))
+
+
+def _scan_window(run: list[_Job], batches: int = 2) -> list[Path]:
+    """The first files of ``run`` that up to ``batches`` batches can take (by count and bytes):
+    scanned ahead, the next batch's files are hashed while this one is in DuckDB."""
+    from tubetrack.ingest.engine import BATCH_MAX_FILES, BATCH_MAX_TOTAL_BYTES
+
+    out, total = [], 0
+    for job in run[: batches * BATCH_MAX_FILES]:
+        total += _size(job.path)
+        if total > batches * BATCH_MAX_TOTAL_BYTES and out:
+            break
+        out.append(job.path)
+    return out
+
+
+def _ingest_jobs(
+    con: duckdb.DuckDBPyConnection,
+    jobs: list[_Job],
+    kind: str | None,
+    dry_run: bool,
+    progress: Any,
+    now_utc: datetime | None,
+    preview_rows: int,
+    ahead: ScanAhead,
+    reports: list[FileReport],
+    previews: list[tuple[str, Preview]],
+    dicom_jobs: list[_Job],
+) -> None:
+    """The loop of :func:`ingest_paths` over its planned jobs (DICOM files are collected)."""
     no_batch_until = 0
     skip_to = 0
     for i, job in enumerate(jobs):
@@ -263,8 +299,9 @@ def ingest_paths(
                     break
                 run.append(nxt)
             if len(run) >= 2:
+                ahead.prefetch(_scan_window(run))
                 taken, tried = ingest_batch(
-                    con, [(j.path, j.shown) for j in run], now_utc=now_utc
+                    con, [(j.path, j.shown) for j in run], now_utc=now_utc, scans_from=ahead
                 )
                 if taken:
                     for rep in taken:
@@ -295,9 +332,6 @@ def ingest_paths(
                 previews.append((job.shown, prev))
         reports.append(rep)
         _call(progress, "file_done", rep)
-    if dicom_jobs:
-        reports.extend(_ingest_dicom(con, dicom_jobs, dry_run, progress))
-    return IngestSummary(tuple(reports), tuple(previews))
 
 
 def _batchable(job: _Job) -> bool:

@@ -104,6 +104,41 @@ def scan_file(path: Path) -> FileScan:
     )
 
 
+class ScanAhead:
+    """:func:`scan_file` of files on one background thread, in the order they are asked for,
+    while the caller's thread waits in DuckDB (which releases the GIL, as hashlib does for large
+    buffers). :meth:`get` gives a file's scan, waiting for it or scanning it then and there;
+    errors (``OSError``) come out of :meth:`get` as from :func:`scan_file`."""
+
+    def __init__(self) -> None:
+        from concurrent.futures import Future, ThreadPoolExecutor
+
+        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="tubetrack-scan")
+        self._futures: dict[Path, Future[FileScan]] = {}
+
+    def prefetch(self, paths: list[Path]) -> None:
+        """Queue these files' scans (files already queued are not queued twice)."""
+        for path in paths:
+            if path not in self._futures:
+                self._futures[path] = self._pool.submit(scan_file, path)
+
+    def get(self, path: Path) -> FileScan:
+        future = self._futures.pop(path, None)
+        return future.result() if future is not None else scan_file(path)
+
+    def close(self) -> None:
+        for future in self._futures.values():
+            future.cancel()
+        self._futures.clear()
+        self._pool.shutdown(wait=True)
+
+    def __enter__(self) -> ScanAhead:
+        return self
+
+    def __exit__(self, *_exc: object) -> None:
+        self.close()
+
+
 def _may_have_blank(buf: bytes) -> bool:
     """True when ``buf`` holds ``\\n\\n`` or ``\\n\\r\\n`` (an empty line).
 
