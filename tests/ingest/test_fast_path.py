@@ -409,3 +409,30 @@ def test_scan_ahead_gives_the_scan_of_each_file_and_its_errors(tmp_path):
         assert scan == scan_file(p)
         assert scan.sha256 == hashlib.sha256(p.read_bytes()).hexdigest()
         assert scan.lines == 1 + 3 + i
+
+
+def test_batch_repeats_within_and_across_files_equal_file_by_file(tmp_path, monkeypatch):
+    """One duplicate pass in the batch: a key three times in one file, and keys repeated within
+    a file that an earlier file also holds, counted per file as the file-by-file path counts
+    them (keys already stored are covered by the re-run in ``_run_batch``)."""
+    d = tmp_path / "logs"
+    d.mkdir()
+    files = {
+        "exposures-1.csv": _rows(0, 4),
+        # key 1 again (earlier file) twice; key 20 three times in this file
+        "exposures-2.csv": _rows(1, 1, kv=90) + _rows(20, 1) + _rows(1, 1, kv=91)
+        + _rows(20, 1, kv=92) + _rows(20, 1, kv=93),
+        "exposures-3.csv": _rows(30, 2) + _rows(2, 1, kv=94) + _rows(30, 1, kv=95),
+    }
+    for name, rows in files.items():
+        _write(d, name, H + "\n" + "".join(r + "\n" for r in rows))
+    taken = _same_batch(d, monkeypatch)
+    assert taken[0] == 3
+    con, reps, _ = _run_batch(d, monkeypatch, True)
+    got = {Path(r.path).name: (r.rows_read, r.rows_duplicate) for r in reps[:3]}
+    assert got == {"exposures-1.csv": (4, 0), "exposures-2.csv": (5, 4), "exposures-3.csv": (4, 2)}
+    # the first line of each key stays
+    assert con.execute(
+        "SELECT source_line, tube_voltage_kv FROM exposures WHERE source_file LIKE "
+        "'%exposures-2.csv' ORDER BY source_line"
+    ).fetchall() == [(3, 80.0)]
