@@ -517,6 +517,19 @@ def write_results_md(path: Path, block: str) -> None:
     path.write_text("# tubetrack benchmark results\n\n" + block + "\n")
 
 
+#: The fleet size whose figures bench/RESULTS.md records (issue 9's targets are stated for it).
+FULL_SIZE = (5000, 10_000_000)
+
+
+def default_results_path(n_tubes: int, n_exposures: int) -> Path:
+    """Where a run writes its results when ``--results`` is not given: the recorded
+    ``bench/RESULTS.md`` for the full default size, a git-ignored file under ``bench/out/``
+    named by the size for any other (a ``--small`` smoke run must not replace the full run)."""
+    if (n_tubes, n_exposures) == FULL_SIZE:
+        return REPO_ROOT / "bench" / "RESULTS.md"
+    return REPO_ROOT / "bench" / "out" / f"RESULTS-t{n_tubes}_e{n_exposures}.md"
+
+
 def main(argv: list[str] | None = None) -> int:
     import argparse
     import time
@@ -528,7 +541,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--repeat", type=int, default=None, help="Runs per step; the median is reported. Default 3 (2 for the full size).")
     ap.add_argument("--repeat-heavy", type=int, default=1, help="Runs of the whole-fleet analyses (tubes, fleet forecast, report, engines). Default 1.")
     ap.add_argument("--data", type=Path, default=REPO_ROOT / "bench" / "data", help="Folder for generated data (git-ignored). Default bench/data.")
-    ap.add_argument("--results", type=Path, default=REPO_ROOT / "bench" / "RESULTS.md", help="Markdown results file. Default bench/RESULTS.md.")
+    ap.add_argument("--results", type=Path, default=None, help="Markdown results file. Default bench/RESULTS.md for the full default size, bench/out/RESULTS-<size>.md (git-ignored) for any other size, so a quick run never overwrites the recorded full run.")
     ap.add_argument("--steps", default="", help="Comma-separated step names to run (default all; above the --small size the engine comparison engine_local,engine_spark runs only when named here).")
     ap.add_argument("--stand-in", action="store_true", help="Use the stand-in fleet even when the demo generator exists.")
     ap.add_argument("--timeout", type=float, default=1800.0, help="Kill a step after this long [s]. Default 1800.")
@@ -563,6 +576,8 @@ def main(argv: list[str] | None = None) -> int:
     total = time.perf_counter() - t0
     args_text = " ".join(a for a in (argv if argv is not None else sys.argv[1:]))
     block = render_markdown(ds, results, machine_info(), args_text, total)
-    write_results_md(args.results, block)
-    log(f"bench: wrote {args.results} ({total / 60:.1f} min)")
+    out = args.results or default_results_path(n_tubes, n_exp)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    write_results_md(out, block)
+    log(f"bench: wrote {out} ({total / 60:.1f} min)")
     return 0

@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 
 from bench.measure import Measurement, run_measured
-from bench.run import Result, Step, Target, table_rows
+from bench.run import Result, Step, Target, default_results_path, table_rows
 
 REPO = Path(__file__).resolve().parents[2]
 
@@ -47,6 +47,17 @@ def test_ratios_and_verdicts() -> None:
     assert rows["ingest"][10] == "1.200" and rows["ingest"][12] == "met"
     assert rows["tubes"][10] == "6.000" and rows["tubes"][12] == "NOT met"
     assert rows["ingest2"][12] == "NOT met"  # ratio met, peak memory over 1 GiB
+
+
+def test_only_the_full_size_writes_the_recorded_results() -> None:
+    # a smoke run (--small, or any other size) must not replace the recorded full-size figures
+    assert default_results_path(5000, 10_000_000) == REPO / "bench" / "RESULTS.md"
+    small = default_results_path(300, 500_000)
+    assert small.parent == REPO / "bench" / "out" and small.name == "RESULTS-t300_e500000.md"
+    assert default_results_path(5000, 2_000_000) != default_results_path(1000, 2_000_000)
+    if (REPO / ".git").exists():
+        ignored = subprocess.run(["git", "check-ignore", "-q", str(small)], cwd=REPO)
+        assert ignored.returncode == 0, "bench/out/ must stay out of git"
 
 
 @pytest.mark.slow
