@@ -29,6 +29,9 @@ def test_daily_statistics_match_pandas(mem_store, sim, load):
     ref = pd.DataFrame({
         "n": g.size(),
         "med": g["filament_current_a"].median(),
+        # pandas' default (linear) interpolation is SQL's percentile_cont
+        "q1": g["filament_current_a"].quantile(0.25),
+        "q3": g["filament_current_a"].quantile(0.75),
         "kv": g["tube_voltage_kv"].median(),
         "prep": g["prep_time_s"].sum(),
         "miss": g["miss"].sum(),
@@ -37,9 +40,28 @@ def test_daily_statistics_match_pandas(mem_store, sim, load):
     assert len(m) == len(ref) == len(daily)
     assert (m["n_exposures"] == m["n"]).all()
     np.testing.assert_allclose(m["filament_current_med_a"], m["med"], rtol=1e-12)
+    np.testing.assert_allclose(m["filament_current_q1_a"], m["q1"], rtol=1e-12)
+    np.testing.assert_allclose(m["filament_current_q3_a"], m["q3"], rtol=1e-12)
+    assert (m["filament_current_q3_a"] > m["filament_current_q1_a"]).any()
     np.testing.assert_allclose(m["tube_voltage_med_kv"], m["kv"], rtol=1e-12)
     np.testing.assert_allclose(m["prep_time_sum_s"], m["prep"], rtol=1e-9)
     assert (m["n_ma_miss"] == m["miss"]).all() and m["n_ma_miss"].sum() > 0
+
+
+def test_local_one_sort_form_equals_the_portable_query(mem_store, sim, load):
+    # the local engine's quartiles in one quantile_cont list must give the portable query's
+    # frame (the one Spark runs): same columns, same order, same values; groups without a
+    # filament current (NULL quartiles) included
+    exp, _ = sim(6, n_days=15)
+    exp.loc[exp.index[::5], "filament_current_a"] = None
+    exp.loc[exp.index[:40], "filament_current_a"] = None
+    load(mem_store, exp, _tubes())
+    params = [None, None, sql.MA_MISS_TOLERANCE]
+    portable = mem_store.execute(sql.DAILY_SQL, params).df()
+    local = mem_store.execute(sql.DAILY_SQL_LOCAL, params).df()
+    assert sql.DAILY_SQL_LOCAL != sql.DAILY_SQL and "quantile_cont" in sql.DAILY_SQL_LOCAL
+    assert portable["filament_current_q1_a"].isna().any()
+    pd.testing.assert_frame_equal(local, portable, check_exact=False, rtol=1e-12)
 
 
 def test_as_of_excludes_later_rows(mem_store, sim, load):

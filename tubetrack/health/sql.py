@@ -34,9 +34,34 @@ def _attributed(alias: str) -> str:
             f"AND (t.removed_at_utc IS NULL OR {alias}.timestamp_utc < t.removed_at_utc)")
 
 
-def daily_sql(source: str = "v_exposures") -> str:
-    """``DAILY_SQL`` over another FROM item with v_exposures' columns (e.g. one chunk's rows)."""
-    return _DAILY_TEMPLATE.replace("{source}", source)
+def daily_sql(source: str = "v_exposures", one_sort: bool = False) -> str:
+    """``DAILY_SQL`` over another FROM item with v_exposures' columns (e.g. one chunk's rows).
+
+    ``one_sort``: DuckDB's form for the local engine. The three quartiles of filament current
+    come from one ``quantile_cont(x, [0.5, 0.25, 0.75])`` (one sort of each group's values)
+    instead of three ``percentile_cont`` aggregates; same values, same columns in the same
+    order. On the bench store (10 M exposures, 6.6 M daily rows) the whole-fleet query took
+    3.3-3.6 s instead of 6.1-8.9 s. The portable form stays ``DAILY_SQL`` (Spark runs it).
+    """
+    sql = _DAILY_TEMPLATE.replace("{source}", source)
+    if not one_sort:
+        return sql
+    three = """    percentile_cont(0.5) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_med_a,
+    percentile_cont(0.25) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_q1_a,
+    percentile_cont(0.75) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_q3_a,
+"""
+    # the list sits in the median's column; the outer REPLACE unpacks it into the three columns
+    # (REPLACE reads the inner row, so all three see the list)
+    one = """    quantile_cont(filament_current_a, [0.5, 0.25, 0.75]) AS filament_current_med_a,
+    CAST(NULL AS DOUBLE) AS filament_current_q1_a,
+    CAST(NULL AS DOUBLE) AS filament_current_q3_a,
+"""
+    order = "ORDER BY tube_id, focal_spot, tube_current_ma, day"
+    assert three in sql and sql.rstrip().endswith(order)
+    inner = sql.replace(three, one).rstrip()[: -len(order)]
+    return (f"SELECT * REPLACE (filament_current_med_a[1] AS filament_current_med_a, "
+            f"filament_current_med_a[2] AS filament_current_q1_a, filament_current_med_a[3] AS "
+            f"filament_current_q3_a) FROM ({inner}) AS g\n{order}\n")
 
 
 #: Per tube x focal spot x mA station x day statistics of the exposures before ``as_of``.
@@ -93,6 +118,8 @@ GROUP BY tube_id, focal_spot, tube_current_ma, day
 ORDER BY tube_id, focal_spot, tube_current_ma, day
 """
 DAILY_SQL = daily_sql()
+#: ``DAILY_SQL`` as the local engine runs it (:func:`daily_sql` with ``one_sort``).
+DAILY_SQL_LOCAL = daily_sql(one_sort=True)
 
 #: Per tube x focal spot x station x day statistics of exported filament tables (calibrations).
 CALIBRATION_SQL = f"""
@@ -180,7 +207,7 @@ def load_daily(
     ma_miss_tolerance
         Relative deviation of measured from set tube current counted as a miss [1].
     """
-    return con.execute(DAILY_SQL, [*_twice(as_of), float(ma_miss_tolerance)]).df()
+    return con.execute(DAILY_SQL_LOCAL, [*_twice(as_of), float(ma_miss_tolerance)]).df()
 
 
 def load_daily_tubes(
@@ -216,7 +243,7 @@ def load_daily_tubes(
     SELECT e.* REPLACE (t.tube_id AS tube_id) FROM exposures e JOIN tubes t ON {_attributed("e")}
     WHERE {in_chunk("t.tube_id")}
 ) AS chunk"""
-    return con.execute(daily_sql(source),
+    return con.execute(daily_sql(source, one_sort=True),
                        [*bounds, *bounds, *_twice(as_of), float(ma_miss_tolerance)]).df()
 
 
