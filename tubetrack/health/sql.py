@@ -43,25 +43,25 @@ def daily_sql(source: str = "v_exposures", one_sort: bool = False) -> str:
     order. On the bench store (10 M exposures, 6.6 M daily rows) the whole-fleet query took
     3.3-3.6 s instead of 6.1-8.9 s. The portable form stays ``DAILY_SQL`` (Spark runs it).
     """
-    sql = _DAILY_TEMPLATE.replace("{source}", source)
     if not one_sort:
-        return sql
-    three = """    percentile_cont(0.5) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_med_a,
-    percentile_cont(0.25) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_q1_a,
-    percentile_cont(0.75) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_q3_a,
-"""
+        return _DAILY_TEMPLATE.format(source=source, quartiles=_QUARTILES_PORTABLE) + _DAILY_ORDER
+    grouped = _DAILY_TEMPLATE.format(source=source, quartiles=_QUARTILES_ONE_SORT)
     # the list sits in the median's column; the outer REPLACE unpacks it into the three columns
     # (REPLACE reads the inner row, so all three see the list)
-    one = """    quantile_cont(filament_current_a, [0.5, 0.25, 0.75]) AS filament_current_med_a,
-    CAST(NULL AS DOUBLE) AS filament_current_q1_a,
-    CAST(NULL AS DOUBLE) AS filament_current_q3_a,
-"""
-    order = "ORDER BY tube_id, focal_spot, tube_current_ma, day"
-    assert three in sql and sql.rstrip().endswith(order)
-    inner = sql.replace(three, one).rstrip()[: -len(order)]
     return (f"SELECT * REPLACE (filament_current_med_a[1] AS filament_current_med_a, "
             f"filament_current_med_a[2] AS filament_current_q1_a, filament_current_med_a[3] AS "
-            f"filament_current_q3_a) FROM ({inner}) AS g\n{order}\n")
+            f"filament_current_q3_a) FROM ({grouped}) AS g\n{_DAILY_ORDER}")
+
+
+_QUARTILES_PORTABLE = """\
+    percentile_cont(0.5) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_med_a,
+    percentile_cont(0.25) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_q1_a,
+    percentile_cont(0.75) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_q3_a,"""
+_QUARTILES_ONE_SORT = """\
+    quantile_cont(filament_current_a, [0.5, 0.25, 0.75]) AS filament_current_med_a,
+    CAST(NULL AS DOUBLE) AS filament_current_q1_a,
+    CAST(NULL AS DOUBLE) AS filament_current_q3_a,"""
+_DAILY_ORDER = "ORDER BY tube_id, focal_spot, tube_current_ma, day\n"
 
 
 #: Per tube x focal spot x mA station x day statistics of the exposures before ``as_of``.
@@ -95,9 +95,7 @@ SELECT
     day,
     count(*) AS n_exposures,
     count(log_i) AS n_current,
-    percentile_cont(0.5) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_med_a,
-    percentile_cont(0.25) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_q1_a,
-    percentile_cont(0.75) WITHIN GROUP (ORDER BY filament_current_a) AS filament_current_q3_a,
+{quartiles}
     percentile_cont(0.5) WITHIN GROUP (ORDER BY tube_voltage_kv) AS tube_voltage_med_kv,
     sum(CASE WHEN log_i IS NOT NULL THEN tube_voltage_kv END) AS sum_kv,
     sum(CASE WHEN log_i IS NOT NULL THEN tube_voltage_kv * tube_voltage_kv END) AS sum_kv2,
@@ -115,7 +113,6 @@ SELECT
                     > ? * tube_current_ma THEN 1 END) AS n_ma_miss
 FROM x
 GROUP BY tube_id, focal_spot, tube_current_ma, day
-ORDER BY tube_id, focal_spot, tube_current_ma, day
 """
 DAILY_SQL = daily_sql()
 #: ``DAILY_SQL`` as the local engine runs it (:func:`daily_sql` with ``one_sort``).

@@ -1022,10 +1022,11 @@ def ingest_batch(
         prune = _prune_clause(con, kind.time_column, kind.key, f"{target} WHERE {new}")
         ekeys = ", ".join(f"e.{qi(k)}" for k in kind.key)
         keys = ", ".join(qi(k) for k in kind.key)
+        stored = f"FROM {target} e WHERE e.rowid <= {last}{prune}"
         con.execute(
-            f"CREATE OR REPLACE TEMP TABLE _tt_rep AS SELECT {keys} FROM (SELECT {ekeys} FROM "
-            f"{target} e WHERE e.rowid <= {last}{prune} UNION ALL SELECT {ekeys} FROM {target} e "
-            f"WHERE e.{new}) GROUP BY ALL HAVING count(*) > 1"
+            f"CREATE OR REPLACE TEMP TABLE _tt_rep AS SELECT {keys} FROM (SELECT {ekeys} {stored} "
+            f"UNION ALL SELECT {ekeys} FROM {target} e WHERE e.{new}) GROUP BY ALL "
+            f"HAVING count(*) > 1"
         )
 
         def match(a: str, b: str) -> str:
@@ -1035,7 +1036,7 @@ def ingest_batch(
         if con.execute("SELECT count(*) FROM _tt_rep").fetchone()[0]:
             con.execute(
                 f"CREATE OR REPLACE TEMP TABLE _tt_existing AS SELECT * FROM (SELECT {ekeys}, "
-                f"-1 AS _idx, -1 AS _line FROM {target} e WHERE e.rowid <= {last}{prune} UNION ALL "
+                f"-1 AS _idx, -1 AS _line {stored} UNION ALL "
                 f"SELECT {ekeys}, b.idx AS _idx, e.source_line AS _line FROM {target} e JOIN "
                 f"_tt_batch b ON b.shown = e.source_file WHERE e.{new}) e SEMI JOIN _tt_rep r "
                 f"ON {match('r', 'e')}"
