@@ -151,6 +151,48 @@ def _one_cut(args: tuple) -> pd.DataFrame:
     return tube_cases(res.summary, cut)
 
 
+def failure_cases(scored: pd.DataFrame) -> pd.DataFrame:
+    """Scored cases of tubes removed for a filament failure within 365 days after the cut-off."""
+    rul = scored["true_rul_days"]
+    return scored[scored["removal_reason"].eq("filament") & rul.notna() & (rul > 0) & (rul <= 365)]
+
+
+def alpha_lambda_per_tube(ev: pd.DataFrame) -> pd.DataFrame:
+    """Alpha-lambda hit and prognostic horizon of each filament-failed tube.
+
+    Parameters
+    ----------
+    ev
+        Cases of filament-failed tubes within 365 days of the failure: tube_id, cut_off,
+        true_rul_days, rul_days_p50 [days].
+
+    Returns
+    -------
+    pandas.DataFrame
+        tube_id, alpha_lambda_hit (the forecast at the cut-off nearest t_lambda lies within
+        (1 +- alpha) x true remaining life), prognostic_horizon_days [days] (see module docstring).
+    """
+    tube_ids, ok_al, ph = [], [], []
+    for tid, g in ev.sort_values("cut_off").groupby("tube_id"):
+        t_p = g["cut_off"].iloc[0]
+        t_eol = t_p + pd.Timedelta(days=float(g["true_rul_days"].iloc[0]))
+        t_lam = t_p + LAMBDA * (t_eol - t_p)
+        j = int(np.argmin(np.abs((g["cut_off"] - t_lam).dt.total_seconds().to_numpy())))
+        r = g.iloc[j]
+        ok_al.append(
+            bool(abs(r["rul_days_p50"] - r["true_rul_days"]) <= ALPHA * r["true_rul_days"])
+        )
+        band = ALPHA * float(g["true_rul_days"].iloc[0])
+        inb = ((g["rul_days_p50"] - g["true_rul_days"]).abs() <= band).to_numpy()
+        # first index from which all later forecasts stay inside the band
+        tail_ok = np.flip(np.logical_and.accumulate(np.flip(inb)))
+        idx = np.flatnonzero(tail_ok)
+        ph.append(float(g["true_rul_days"].iloc[idx[0]]) if idx.size else 0.0)
+        tube_ids.append(tid)
+    return pd.DataFrame({"tube_id": tube_ids, "alpha_lambda_hit": ok_al,
+                         "prognostic_horizon_days": ph})
+
+
 def score_cases(
     cases: pd.DataFrame, tubes: pd.DataFrame, data_end: pd.Timestamp, every_days: int
 ) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -200,12 +242,7 @@ def score_cases(
             len(u),
             "same probabilities scored against failures of any cause (filament forecast cannot see the others)",
         )
-    ev = c[
-        fil
-        & c["true_rul_days"].notna()
-        & (c["true_rul_days"] > 0)
-        & (c["true_rul_days"] <= 365)
-    ]
+    ev = failure_cases(c)
     inside = (ev["rul_days_p10"] <= ev["true_rul_days"]) & (
         ev["true_rul_days"] <= ev["rul_days_p90"]
     )
@@ -222,22 +259,8 @@ def score_cases(
         len(ev),
         "|P50 - true| / true",
     )
-    ok_al, ph = [], []
-    for _tid, g in ev.sort_values("cut_off").groupby("tube_id"):
-        t_p = g["cut_off"].iloc[0]
-        t_eol = t_p + pd.Timedelta(days=float(g["true_rul_days"].iloc[0]))
-        t_lam = t_p + LAMBDA * (t_eol - t_p)
-        j = int(np.argmin(np.abs((g["cut_off"] - t_lam).dt.total_seconds().to_numpy())))
-        r = g.iloc[j]
-        ok_al.append(
-            abs(r["rul_days_p50"] - r["true_rul_days"]) <= ALPHA * r["true_rul_days"]
-        )
-        band = ALPHA * float(g["true_rul_days"].iloc[0])
-        inb = ((g["rul_days_p50"] - g["true_rul_days"]).abs() <= band).to_numpy()
-        # first index from which all later forecasts stay inside the band
-        tail_ok = np.flip(np.logical_and.accumulate(np.flip(inb)))
-        idx = np.flatnonzero(tail_ok)
-        ph.append(float(g["true_rul_days"].iloc[idx[0]]) if idx.size else 0.0)
+    per_tube = alpha_lambda_per_tube(ev)
+    ok_al, ph = per_tube["alpha_lambda_hit"].tolist(), per_tube["prognostic_horizon_days"].tolist()
     add(
         "alpha_lambda_accuracy",
         np.mean(ok_al) if ok_al else np.nan,
