@@ -106,3 +106,9 @@ def test_shipped_mode_is_the_backtest_and_the_truth_sharpens_it(tmp_path):
     pd.testing.assert_series_equal(table["shipped"].reindex(ref.index), ref, check_names=False)
     assert table.loc["median_relative_rul_error", "both"] < table.loc["median_relative_rul_error", "shipped"]
     assert table.loc["alpha_lambda_accuracy", "both"] >= table.loc["alpha_lambda_accuracy", "shipped"]
+
+
+def test_a_folder_without_the_demo_truth_is_refused_with_its_names(tmp_path, capsys):
+    assert oracle.main(["--logs", str(tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert "truth.csv" in err and "truth_diameter.csv.gz" in err and "tubetrack demo" in err
