@@ -73,3 +73,11 @@ def test_chunked_pool_analysis_equals_the_serial_whole_fleet(mem_store, sim, loa
             frame, other = frame.drop(columns="analysed_at_utc"), other.drop(columns="analysed_at_utc")
         pd.testing.assert_frame_equal(other.reset_index(drop=True), frame.reset_index(drop=True),
                                       check_dtype=False, rtol=1e-9)
+
+
+def test_no_filament_states_keep_the_configured_prior():
+    # e.g. an as-of date soon after the first exposure: no filament has a fitted state yet
+    from tubetrack.health.api import fleet_k_priors
+    from tubetrack.health.params import HealthParams
+
+    assert fleet_k_priors([], HealthParams()) == {}

@@ -76,6 +76,14 @@ def test_tube_unknown_is_a_clear_error(db):
     assert r.exit_code == 1 and "not in the store" in r.output
 
 
+@pytest.mark.parametrize("command", [["tubes"], ["tube", "T1"]])
+def test_as_of_before_the_first_exposure_is_a_clear_error(db, command):
+    # the store's exposures start on 2024-01-01 (see _build)
+    r = CliRunner().invoke(app, [*command, "--db", str(db), "--as-of", "2023-06-01", "-q"])
+    assert r.exit_code == 1 and r.exception is not None and isinstance(r.exception, SystemExit), r.output
+    assert "no exposures before 2023-06-01" in r.output and "2024-01-01" in r.output
+
+
 def test_help_carries_safety_note():
     from tubetrack.cli.common import SAFETY_NOTE
 

@@ -101,8 +101,9 @@ def fleet_k_priors(states: list[dict[str, Any]], params: HealthParams) -> dict[s
     filaments keep the configured prior.
     """
     out: dict[str, tuple[float, float]] = {}
-    frame = pd.DataFrame([{k: st[k] for k in ("focal_spot", "flat_k", "flat_k_se", "span_days")} for st in states]) \
-        if states else pd.DataFrame(columns=["focal_spot", "flat_k", "flat_k_se", "span_days"])
+    if not states:
+        return out
+    frame = pd.DataFrame([{k: st[k] for k in ("focal_spot", "flat_k", "flat_k_se", "span_days")} for st in states])
     ok = frame[(frame["span_days"] >= params.fleet_prior_min_days) & np.isfinite(frame["flat_k"])
                & (frame["flat_k"] > 0) & (frame["flat_k_se"] < 0.3 * frame["flat_k"].abs())]
     for focal, g in ok.groupby("focal_spot"):
@@ -430,17 +431,26 @@ def _fleet_step(
 
 
 def effective_as_of(con: duckdb.DuckDBPyConnection, as_of: datetime | None) -> datetime:
-    """The analysis date: ``as_of`` as given, else the day after the last exposure."""
+    """The analysis date: ``as_of`` as given, else the day after the last exposure.
+
+    Raises :class:`~tubetrack.errors.AnalysisError` for an empty store and for an ``as_of`` on or
+    before the first exposure (nothing to analyse), naming the store's span.
+    """
     from tubetrack.errors import AnalysisError
 
-    if as_of is not None:
-        return as_of
-    end = sql.data_end(con)
-    if end is None:
+    first, last = store.data_span(con)
+    if last is None:
         raise AnalysisError(
             "the store holds no exposures. Ingest logs first (`tubetrack ingest PATH`)."
         )
-    return (pd.Timestamp(end).normalize() + pd.Timedelta(days=1)).to_pydatetime()
+    if as_of is None:
+        return (pd.Timestamp(last).normalize() + pd.Timedelta(days=1)).to_pydatetime()
+    if pd.Timestamp(as_of) <= pd.Timestamp(first):
+        raise AnalysisError(
+            f"no exposures before {pd.Timestamp(as_of):%Y-%m-%d}: the store's exposures run from "
+            f"{pd.Timestamp(first):%Y-%m-%d} to {pd.Timestamp(last):%Y-%m-%d}. Choose a later --as-of."
+        )
+    return as_of
 
 
 def load_inputs(con: duckdb.DuckDBPyConnection, as_of: datetime | None, params: HealthParams) -> dict:

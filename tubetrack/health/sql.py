@@ -257,9 +257,3 @@ def load_events(con: duckdb.DuckDBPyConnection, as_of: datetime | None = None) -
 def load_tubes(con: duckdb.DuckDBPyConnection, as_of: datetime | None = None) -> pd.DataFrame:
     """Tubes known at ``as_of`` with removals after ``as_of`` hidden."""
     return con.execute(TUBES_SQL, [as_of] * 6).df()
-
-
-def data_end(con: duckdb.DuckDBPyConnection, as_of: datetime | None = None) -> datetime | None:
-    """Time of the last exposure before ``as_of`` (UTC), ``None`` for an empty store."""
-    row = con.execute(DATA_END_SQL, _twice(as_of)).fetchone()
-    return row[0] if row else None
