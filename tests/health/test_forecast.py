@@ -125,3 +125,50 @@ def test_tube_past_the_fleet_median_threshold_is_not_forecast_dead():
     med = stats.truncnorm((0.050 - 0.048) / 0.0055, np.inf, loc=0.048, scale=0.0055).median()
     assert fc["rul_days_p50"] == pytest.approx((med - 0.050) / 1e-4, rel=0.03)
     assert fc["rul_days_p10"] > 0
+
+
+def _analyse_at(mem_store, sim, load, n_days, as_of_day, params=None, seed=11):
+    """One simulated tube logged for n_days, analysed as of day ``as_of_day`` after its start."""
+    exp, truth = sim(seed, n_days=n_days, rate_at_400ma_per_s=RATE)
+    tubes = pd.DataFrame({"tube_id": ["T1"], "system_id": ["S1"],
+                          "installed_at_utc": [pd.Timestamp("2024-01-01")],
+                          "removed_at_utc": [pd.NaT], "removal_reason": [None]})
+    load(mem_store, exp, tubes)
+    daily = sql.load_daily(mem_store)
+    mem_store.execute("DELETE FROM exposures; DELETE FROM tubes")
+    meta = {"tube_id": "T1", "system_id": "S1", "installed_at_utc": "2024-01-01",
+            "as_of": pd.Timestamp("2024-01-01") + pd.Timedelta(days=as_of_day), "removal_reason": None}
+    p = params or HealthParams(prior_k_sd=5.0, eol_diameter_loss_sd=1e-4, stale_after_days=14)
+    return analyse_tube(daily, meta, p, physics=PowerLawPhysics(RATE)), truth
+
+
+def test_stopped_logs_carry_the_recent_wear_on_to_the_analysis_date(mem_store, sim, load):
+    # logs end after day 400; analysed at the end of the logs and 120 days later
+    at_end, truth = _analyse_at(mem_store, sim, load, 400, 400)
+    later, _ = _analyse_at(mem_store, sim, load, 400, 520)
+    e, s = at_end["summary"].iloc[0], later["summary"].iloc[0]
+    assert not e["logs_stopped"] and e["unlogged_days_at_end"] == 0
+    assert s["logs_stopped"] and s["unlogged_days_at_end"] == 120
+    # the same recent workload per day (the window ends with the logs), carried over the 120
+    # silent days: loss = a + k (x_end + 120 r)
+    se, ss = at_end["states"][0], later["states"][0]
+    assert ss["rate_phys_per_day"] == pytest.approx(se["rate_phys_per_day"], rel=1e-12)
+    assert ss["k"] == pytest.approx(se["k"], rel=1e-12)
+    assert ss["loss_now"] == pytest.approx(se["loss_now"] + se["k"] * 120 * se["rate_phys_per_day"], rel=1e-9)
+    assert s["diameter_loss_pct"] == pytest.approx(100 * ss["loss_now"], rel=1e-12)
+    # and more uncertain (the workload's spread over the gap)
+    assert s["diameter_loss_pct_se"] > e["diameter_loss_pct_se"]
+    # the linear projection at that rate: 120 days less to go (Monte Carlo, 2000 draws)
+    assert s["rul_days_p50"] == pytest.approx(e["rul_days_p50"] - 120, rel=0.03)
+    # the same tube without the rule (the old behaviour) would be forecast as never wearing
+    off, _ = _analyse_at(mem_store, sim, load, 400, 520,
+                         params=HealthParams(prior_k_sd=5.0, eol_diameter_loss_sd=1e-4, stale_after_days=10_000))
+    assert off["summary"].iloc[0]["rul_days_p50"] > e["rul_days_p50"]
+
+
+def test_a_short_pause_is_not_stopped_logs(mem_store, sim, load):
+    at_end, _ = _analyse_at(mem_store, sim, load, 400, 400)
+    pause, _ = _analyse_at(mem_store, sim, load, 400, 410)
+    e, s = at_end["summary"].iloc[0], pause["summary"].iloc[0]
+    assert not s["logs_stopped"] and s["unlogged_days_at_end"] == 10
+    assert s["diameter_loss_pct"] == e["diameter_loss_pct"]

@@ -34,8 +34,11 @@ def test_rules_and_reasons():
              unforeseeable=True),
         _row(history_days=20.0),
         _row(diameter_loss_pct=5.2, rul_days_p50=40.0, rul_days_p10=10.0, p_end_of_life_90d=0.8),
+        _row(logs_stopped=True, unlogged_days_at_end=45.0),
     ]), threshold=0.0513, min_history_days=90, max_rul_days=3650)
-    assert list(s["health_rank"]) == [0, 1, 2, 3, 4, 2, 1, 4]
+    assert list(s["health_rank"]) == [0, 1, 2, 3, 4, 2, 1, 4, 1]
+    assert "no exposure logged in the 45 days before the analysis date" in s["reason"].iloc[8]
+    assert "logs_stopped" in s["signals"].iloc[8] and "logs_stopped" not in s["signals"].iloc[0]
     assert "past the fleet's expected end of life while the filament is still intact" in s["reason"].iloc[7]
     assert "50 % chance of end of life within 40 days" in s["reason"].iloc[7]
     assert list(s["health_level"]) == [LEVELS[i] for i in s["health_rank"]]

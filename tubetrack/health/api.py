@@ -48,7 +48,7 @@ SUMMARY_COLUMNS = (
 )
 EXTRA_COLUMNS = (
     "threshold_pct", "threshold_sd_pct", "threshold_source", "wear_rate_pct_per_day", "wear_factor_k", "wear_factor_k_se", "history_days",
-    "days_with_current", "pre_log_gap_days", "current_drop_pct", "current_drop_station_ma",
+    "days_with_current", "pre_log_gap_days", "unlogged_days_at_end", "logs_stopped", "current_drop_pct", "current_drop_station_ma",
     "arc_rate_recent_per_1000", "arc_trend_p", "ma_miss_fraction", "resistance_change_pct",
     "unforeseeable", "rul_days_p50_wiener", "p_end_of_life_180d_wiener", "kv_model",
     "kv_slope_per_kv", "exposures_per_day",

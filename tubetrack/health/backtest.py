@@ -129,7 +129,7 @@ def tube_cases(summary: pd.DataFrame, cut: pd.Timestamp) -> pd.DataFrame:
             "signature_flag": (
                 g["signals"].apply(
                     lambda x: any(
-                        sig not in ("", "filament_wear", "short_history")
+                        sig not in ("", "filament_wear", "short_history", "logs_stopped")
                         for v in x
                         for sig in str(v).split(",")
                     )

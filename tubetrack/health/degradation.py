@@ -232,7 +232,9 @@ class WearFit:
     x_now
         Wear index at the analysis date [1].
     x_pre, x_pre_sd
-        Estimated wear before the first logged day and its standard deviation [1].
+        Estimated wear before the first logged day [1], and the standard deviation of all the
+        unlogged wear in ``x_now``: before the first logged day and, when the tube's logs stopped
+        before the analysis date, after its newest logged day [1].
     n_days
         Days with a diameter estimate used in the fit [count].
     span_days

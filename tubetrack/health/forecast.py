@@ -15,6 +15,7 @@ threshold D. P10/P50/P90 of T, P(T <= 30/90/180 days) and the CDF on 30..365 day
 
 from __future__ import annotations
 
+import dataclasses
 import zlib
 from typing import Any
 
@@ -226,6 +227,11 @@ def analyse_tube(
     rows, drifts, diams, cps, states = [], [], [], [], []
     projections, cdfs = {}, {}
     daily = daily.assign(day=as_datetime(daily["day"]))
+    # --- stopped logs: no exposure of this tube (any focal spot) in the last stale_after_days
+    logged_end = pd.Timestamp(daily["day"].max()).normalize() + pd.Timedelta(days=1) if len(daily) else as_of
+    unlogged_end_days = max(0.0, float((as_of - logged_end).days))
+    stale = tube_meta.get("removal_reason") is None and unlogged_end_days > p.stale_after_days
+    window_end = logged_end if stale else as_of  # the recent workload ends with the logs
     for focal in sorted(daily["focal_spot"].dropna().unique()):
         dfs = daily[daily["focal_spot"] == focal]
         kvm = drift.fit_kv_model(dfs, focal, baseline_days=p.baseline_days)
@@ -352,13 +358,19 @@ def analyse_tube(
             fit_from = min(last_break, as_of - pd.Timedelta(days=p.min_fit_days))
         fit = fit_wear(comb, wear, fit_from, x_pre, x_pre_sd, p.prior_k_sd, as_of,
                        prior_k_mean=p.prior_k_mean)
-        loss_now, loss_se = fit.loss_now()
         # --- recent workload per calendar day
-        recent_start = as_of - pd.Timedelta(days=p.recent_days)
+        recent_start = window_end - pd.Timedelta(days=p.recent_days)
         rec = w_day >= np.datetime64(recent_start)
-        span_rec = max(1.0, min(float(p.recent_days), float((as_of - first_day).days)))
+        span_rec = max(1.0, min(float(p.recent_days), float((window_end - first_day).days)))
         rate_phys = float(w_wear[rec].sum()) / span_rec
         epd = float(wear["n_exposures"].to_numpy(float)[rec].sum()) / span_rec
+        if stale:
+            # wear since the newest logged day at the recent rate, as uncertain as the workload;
+            # its spread joins that of the wear before the first logged day
+            x_post = unlogged_end_days * rate_phys
+            fit = dataclasses.replace(fit, x_now=fit.x_now + x_post,
+                                      x_pre_sd=float(np.hypot(fit.x_pre_sd, cv * x_post)))
+        loss_now, loss_se = fit.loss_now()
         flat_beta, flat_cov = posterior(fit.data_precision, fit.data_rhs, 1.0, 1e6)
         state = {"tube_id": tube_id, "focal_spot": focal, "a": fit.a, "k": fit.k, "cov": fit.cov,
                  "x_now": fit.x_now, "x_b": fit.x_b, "x_pre_sd": fit.x_pre_sd,
@@ -426,7 +438,8 @@ def analyse_tube(
             "current_drop_pct": drop_pct, "current_drop_station_ma": drop_ma,
             "wear_factor_k": fit.k, "wear_factor_k_se": float(np.sqrt(fit.cov[1, 1])),
             "history_days": fit.span_days, "days_with_current": n_cur_days,
-            "pre_log_gap_days": gap_days, "kv_model": kvm.source, "kv_slope_per_kv": kvm.slope_per_kv,
+            "pre_log_gap_days": gap_days, "unlogged_days_at_end": unlogged_end_days,
+            "logs_stopped": bool(stale), "kv_model": kvm.source, "kv_slope_per_kv": kvm.slope_per_kv,
             "rul_days_p50_wiener": wien_p50, "p_end_of_life_180d_wiener": wien_p180,
             "exposures_per_day": epd,
         })

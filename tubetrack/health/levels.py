@@ -16,7 +16,8 @@ the threshold in use (the forecast, conditioned on the filament still being inta
 short remaining life rather than zero) or the median remaining life is zero;
 imminent when P(EOL <= 30 d) >= 0.25 or P(EOL <= 90 d) >= 0.5; prepare when
 P(EOL <= 180 d) >= 0.3 or a signature of level 2; observe when P(EOL <= 180 d) >= 0.05, a
-signature of level 1, or too little history; otherwise sound.
+signature of level 1, too little history, or stopped logs (no exposure logged in the last
+``stale_after_days`` before the analysis date); otherwise sound.
 """
 
 from __future__ import annotations
@@ -54,24 +55,27 @@ def assign_levels(summary: pd.DataFrame, threshold: float, min_history_days: flo
     p180 = s["p_end_of_life_180d"].to_numpy(float)
     sig = s["signature_level"].to_numpy(int)
     short = s["history_days"].to_numpy(float) < min_history_days
+    stopped = s["logs_stopped"].eq(True).to_numpy() if "logs_stopped" in s else np.zeros(len(s), bool)
     rank = np.select(
         [(s["rul_days_p50"].to_numpy(float) <= 0.0)
          | (s["diameter_loss_pct"].to_numpy(float) >= 100.0 * threshold),
          (p30 >= 0.25) | (p90 >= 0.5),
-         (p180 >= 0.3) | (sig >= 2), (p180 >= 0.05) | (sig >= 1) | short],
+         (p180 >= 0.3) | (sig >= 2), (p180 >= 0.05) | (sig >= 1) | short | stopped],
         [4, 3, 2, 1], default=0,
     )
     s["health_rank"] = rank.astype(int)
     s["health_level"] = [LEVELS[r] for r in rank]
-    s["reason"] = [_reason(r, threshold, max_rul_days, sh) for r, sh in
-                   zip(s.to_dict("records"), short, strict=True)]
+    s["reason"] = [_reason(r, threshold, max_rul_days, sh, st) for r, sh, st in
+                   zip(s.to_dict("records"), short, stopped, strict=True)]
     sigs = []
-    for r, sh in zip(s.to_dict("records"), short, strict=True):
+    for r, sh, st in zip(s.to_dict("records"), short, stopped, strict=True):
         items = [x for x in str(r.get("signals_list") or "").split(",") if x]
         if r["p_end_of_life_180d"] >= 0.05:
             items.insert(0, "filament_wear")
         if sh:
             items.append("short_history")
+        if st:
+            items.append("logs_stopped")
         sigs.append(",".join(items))
     s["signals"] = sigs
     return s
@@ -85,7 +89,7 @@ def _fmt_days(days: float, cap: float) -> str:
     return f"{days:.0f} days"
 
 
-def _reason(r: dict, threshold: float, cap: float, short: bool) -> str:
+def _reason(r: dict, threshold: float, cap: float, short: bool, stopped: bool = False) -> str:
     parts = []
     head = f"{r['focal_spot']} focus: "
     if np.isfinite(r.get("current_drop_pct", np.nan)):
@@ -114,6 +118,12 @@ def _reason(r: dict, threshold: float, cap: float, short: bool) -> str:
         parts.append(
             f"too little history ({r['history_days']:.0f} days of filament current): interval "
             "widened for the unknown workload pattern, treat the dates as rough"
+        )
+    if stopped:
+        parts.append(
+            f"no exposure logged in the {r['unlogged_days_at_end']:.0f} days before the analysis "
+            "date: wear since the newest logged day assumed at the recent rate; check that this "
+            "system's logs still arrive"
         )
     if r.get("signature_reasons"):
         parts.append(str(r["signature_reasons"]))

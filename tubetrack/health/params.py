@@ -48,7 +48,14 @@ class HealthParams:
         Log-scale spread of the future workload when less than two full quarters are logged (the
         tube's pattern is not known yet) [1].
     recent_days
-        Window of recent workload used for the projection [days].
+        Window of recent workload used for the projection [days]. It ends at the analysis date,
+        or at the tube's newest logged day when its logs stopped (see ``stale_after_days``).
+    stale_after_days
+        A tube in service with no logged exposure in this many days before the analysis date
+        has *stopped logs* (an export that stopped arriving, or an analysis date past the data):
+        the workload since its newest logged day is assumed to have gone on at its recent rate
+        (with the workload's spread), the level is at least "observe" and the reason says so.
+        Without this a silent tube would be forecast to last for ever [days].
     n_samples
         Monte Carlo samples per tube and focal spot [count].
     seed
@@ -78,6 +85,7 @@ class HealthParams:
     workload_sd: float = 0.10
     workload_sd_unknown: float = 0.35
     recent_days: int = 90
+    stale_after_days: int = 14
     n_samples: int = 2000
     seed: int = 20261202
     max_rul_days: float = 3650.0
