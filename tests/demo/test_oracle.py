@@ -45,10 +45,8 @@ def test_true_loss_is_interpolated_in_time_and_absent_outside_the_series():
     })
     cut = pd.Timestamp("2024-01-20")  # the day before is 2024-01-19, between weeks 2 and 3
     got = oracle.true_loss_at(diameter, cut)
-    x = days.to_numpy("datetime64[ns]").astype(np.int64)
-    t = (cut - pd.Timedelta(days=1)).value
-    # Source: numpy.interp (piecewise-linear interpolation)
-    assert got[("A", "large")] == pytest.approx(np.interp(t, x, diameter["diameter_loss"][:5]))
+    # by hand: 2024-01-19 is 4 of the 7 days from 2024-01-15 (0.013) to 2024-01-22 (0.017)
+    assert got[("A", "large")] == pytest.approx(0.013 + 4 / 7 * 0.004, rel=1e-12)
     assert ("B", "small") not in got  # its series starts later
 
 
@@ -84,6 +82,21 @@ def test_substitution_is_applied_per_filament_and_undone():
     assert api.forecast_task is shipped
     direct = forecast_from_state(oracle.state_with_loss(state, 0.03), 0.04, oracle.KNOWN_POINT_SD, p)
     assert got["rul_days_p50"] == direct["rul_days_p50"]
+    # each mode routes only its own inputs
+    expected = {
+        "true_failure_point": forecast_from_state(state, 0.04, oracle.KNOWN_POINT_SD, p),
+        "true_loss": forecast_from_state(oracle.state_with_loss(state, 0.03), 0.05, 0.006, p),
+        "true_loss_population": forecast_from_state(oracle.state_with_loss(state, 0.03), 0.05, 0.005, p),
+        "shipped": forecast_from_state(state, 0.05, 0.006, p),
+    }
+    for mode, want in expected.items():
+        with oracle._substituted(mode, {("A", "large"): 0.04}, {("A", "large"): 0.03}, (0.05, 0.005)):
+            assert api.forecast_task(args)[0]["rul_days_p50"] == want["rul_days_p50"], mode
+    # and the shipped function is back even when the replay fails
+    with pytest.raises(RuntimeError):
+        with oracle._substituted("both", {}, {}, (0.05, 0.005)):
+            raise RuntimeError("a cut-off failed")
+    assert api.forecast_task is shipped
     # a filament without truth keeps the shipped inputs
     assert other["rul_days_p50"] == shipped(({**state, "tube_id": "B"}, 0.05, 0.006, p, np.inf))[0]["rul_days_p50"]
 
@@ -106,6 +119,12 @@ def test_shipped_mode_is_the_backtest_and_the_truth_sharpens_it(tmp_path):
     pd.testing.assert_series_equal(table["shipped"].reindex(ref.index), ref, check_names=False)
     assert table.loc["median_relative_rul_error", "both"] < table.loc["median_relative_rul_error", "shipped"]
     assert table.loc["alpha_lambda_accuracy", "both"] >= table.loc["alpha_lambda_accuracy", "shipped"]
+
+
+def test_a_store_without_exposures_is_a_clear_error(tmp_path, capsys):
+    store.connect(tmp_path / "empty.duckdb").close()
+    assert oracle.main(["--logs", str(SAMPLE_LOGS), "--db", str(tmp_path / "empty.duckdb")]) == 2
+    assert "no exposures" in capsys.readouterr().err
 
 
 def test_a_folder_without_the_demo_truth_is_refused_with_its_names(tmp_path, capsys):

@@ -127,9 +127,10 @@ def test_tube_past_the_fleet_median_threshold_is_not_forecast_dead():
     assert fc["rul_days_p10"] > 0
 
 
-def _analyse_at(mem_store, sim, load, n_days, as_of_day, params=None, seed=11):
+def _analyse_at(mem_store, sim, load, n_days, as_of_day, params=None, seed=11, meta_extra=None,
+                shift_day=None):
     """One simulated tube logged for n_days, analysed as of day ``as_of_day`` after its start."""
-    exp, truth = sim(seed, n_days=n_days, rate_at_400ma_per_s=RATE)
+    exp, truth = sim(seed, n_days=n_days, rate_at_400ma_per_s=RATE, shift_day=shift_day)
     tubes = pd.DataFrame({"tube_id": ["T1"], "system_id": ["S1"],
                           "installed_at_utc": [pd.Timestamp("2024-01-01")],
                           "removed_at_utc": [pd.NaT], "removal_reason": [None]})
@@ -137,7 +138,8 @@ def _analyse_at(mem_store, sim, load, n_days, as_of_day, params=None, seed=11):
     daily = sql.load_daily(mem_store)
     mem_store.execute("DELETE FROM exposures; DELETE FROM tubes")
     meta = {"tube_id": "T1", "system_id": "S1", "installed_at_utc": "2024-01-01",
-            "as_of": pd.Timestamp("2024-01-01") + pd.Timedelta(days=as_of_day), "removal_reason": None}
+            "as_of": pd.Timestamp("2024-01-01") + pd.Timedelta(days=as_of_day), "removal_reason": None,
+            **(meta_extra or {})}
     p = params or HealthParams(prior_k_sd=5.0, eol_diameter_loss_sd=1e-4, stale_after_days=14)
     return analyse_tube(daily, meta, p, physics=PowerLawPhysics(RATE)), truth
 
@@ -163,7 +165,7 @@ def test_stopped_logs_carry_the_recent_wear_on_to_the_analysis_date(mem_store, s
     # the same tube without the rule (the old behaviour) would be forecast as never wearing
     off, _ = _analyse_at(mem_store, sim, load, 400, 520,
                          params=HealthParams(prior_k_sd=5.0, eol_diameter_loss_sd=1e-4, stale_after_days=10_000))
-    assert off["summary"].iloc[0]["rul_days_p50"] > e["rul_days_p50"]
+    assert off["summary"].iloc[0]["rul_days_p50"] == HealthParams().max_rul_days
 
 
 def test_a_short_pause_is_not_stopped_logs(mem_store, sim, load):
@@ -172,3 +174,29 @@ def test_a_short_pause_is_not_stopped_logs(mem_store, sim, load):
     e, s = at_end["summary"].iloc[0], pause["summary"].iloc[0]
     assert not s["logs_stopped"] and s["unlogged_days_at_end"] == 10
     assert s["diameter_loss_pct"] == e["diameter_loss_pct"]
+
+
+@pytest.mark.parametrize(("silent_days", "stopped"), [(13, False), (14, True)])
+def test_stopped_logs_start_at_the_configured_number_of_silent_days(mem_store, sim, load, silent_days, stopped):
+    # logs on days 0..399: analysed as of day 400 + n, the n days before it have no exposure
+    out, _ = _analyse_at(mem_store, sim, load, 400, 400 + silent_days)
+    s = out["summary"].iloc[0]
+    assert s["unlogged_days_at_end"] == silent_days and bool(s["logs_stopped"]) is stopped
+
+
+def test_a_removed_tube_without_a_reason_is_not_stopped_logs(mem_store, sim, load):
+    out, _ = _analyse_at(mem_store, sim, load, 400, 520, meta_extra={"removed": True})
+    assert not out["summary"].iloc[0]["logs_stopped"]
+
+
+def test_stopped_logs_fit_the_same_span_as_at_the_end_of_the_logs(mem_store, sim, load):
+    # a 2 % sensor step 30 days before the logs end: the fit reaches back min_fit_days from the
+    # newest log, not from the analysis date (120 silent days would leave it 60 days of data)
+    p = HealthParams(prior_k_sd=5.0, eol_diameter_loss_sd=1e-4)
+    at_end, truth = _analyse_at(mem_store, sim, load, 400, 400, params=p, shift_day=370)
+    later, _ = _analyse_at(mem_store, sim, load, 400, 520, params=p, shift_day=370)
+    se, sl = at_end["states"][0], later["states"][0]
+    assert sl["n_days"] == se["n_days"] >= 150
+    assert sl["k"] == pytest.approx(se["k"], rel=1e-12)
+    assert abs(se["loss_now"] - truth["loss"].iloc[-1]) < 3 * se["loss_se"] + 0.001
+    assert sl["loss_now"] > se["loss_now"]

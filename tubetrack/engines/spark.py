@@ -307,7 +307,6 @@ def run_health_spark(
     -------
     tubetrack.health.HealthResult
     """
-    import pandas as pd
 
     from tubetrack.health import api
     from tubetrack.health import sql as hsql
@@ -318,14 +317,10 @@ def run_health_spark(
     register_lake(spark, lake_path)
 
     # the analysis date, as the local engine chooses it
-    if as_of is None:
-        end = spark.sql(to_spark_sql(hsql.DATA_END_SQL, [None, None])).collect()[0][0]
-        if end is None:
-            raise AnalysisError(
-                "the lake holds no exposures. Export a store with exposures first."
-            )
-        as_of = (pd.Timestamp(end).normalize() + pd.Timedelta(days=1)).to_pydatetime()
-    cut = as_of
+    first, last = spark.sql(to_spark_sql(hsql.DATA_SPAN_SQL, [])).collect()[0]
+    cut = api.analysis_date(
+        first, last, as_of, "the lake holds no exposures. Export a store with exposures first."
+    )
 
     # stage 1: aggregation (stays distributed for the exposures)
     tol = hsql.MA_MISS_TOLERANCE

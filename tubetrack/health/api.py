@@ -248,7 +248,7 @@ def _tasks(
         t_as_of = pd.Timestamp(t.removed_at_utc).normalize() + pd.Timedelta(days=1) if removed else cut
         meta = {"tube_id": tid, "system_id": t.system_id, "site": getattr(t, "site", None),
                 "installed_at_utc": t.installed_at_utc, "as_of": min(t_as_of, cut),
-                "removal_reason": t.removal_reason if removed else None,
+                "removal_reason": t.removal_reason if removed else None, "removed": bool(removed),
                 # the fleet step forecasts with the learned threshold; skip the per-tube one
                 "forecast": False}
         metas[tid] = meta
@@ -319,7 +319,8 @@ def _fleet_step(
         failed, p.eol_diameter_loss, p.eol_diameter_loss_sd, p.min_failures_for_threshold,
         survivors=surviving_focal_losses(states, failed),
     )
-    in_service = {tid for tid, m in metas.items() if m["removal_reason"] is None}
+    # removed = a removal date before the analysis date (the reason may be missing)
+    in_service = {tid for tid, m in metas.items() if not m.get("removed", m["removal_reason"] is not None)}
     # diameter series: total loss = loss since baseline + k x_b with the refitted k
     shift = {(st["tube_id"], st["focal_spot"]): 100.0 * st["k"] * st["x_b"] for st in states}
     summaries, served = [], []
@@ -430,27 +431,34 @@ def _fleet_step(
     )
 
 
-def effective_as_of(con: duckdb.DuckDBPyConnection, as_of: datetime | None) -> datetime:
-    """The analysis date: ``as_of`` as given, else the day after the last exposure.
+def analysis_date(first: datetime | None, last: datetime | None, as_of: datetime | None,
+                  empty_message: str) -> datetime:
+    """The analysis date from the span of the exposures: ``as_of`` as given, else the day after
+    the last exposure.
 
-    Raises :class:`~tubetrack.errors.AnalysisError` for an empty store and for an ``as_of`` on or
-    before the first exposure (nothing to analyse), naming the store's span.
+    Raises :class:`~tubetrack.errors.AnalysisError` with ``empty_message`` when there are no
+    exposures, and for an ``as_of`` on or before the first exposure (nothing to analyse), naming
+    the span.
     """
     from tubetrack.errors import AnalysisError
 
-    first, last = store.data_span(con)
     if last is None:
-        raise AnalysisError(
-            "the store holds no exposures. Ingest logs first (`tubetrack ingest PATH`)."
-        )
+        raise AnalysisError(empty_message)
     if as_of is None:
         return (pd.Timestamp(last).normalize() + pd.Timedelta(days=1)).to_pydatetime()
     if pd.Timestamp(as_of) <= pd.Timestamp(first):
         raise AnalysisError(
-            f"no exposures before {pd.Timestamp(as_of):%Y-%m-%d}: the store's exposures run from "
+            f"no exposures before {pd.Timestamp(as_of):%Y-%m-%d}: the exposures run from "
             f"{pd.Timestamp(first):%Y-%m-%d} to {pd.Timestamp(last):%Y-%m-%d}. Choose a later --as-of."
         )
     return as_of
+
+
+def effective_as_of(con: duckdb.DuckDBPyConnection, as_of: datetime | None) -> datetime:
+    """The store's analysis date (:func:`analysis_date` over its exposures)."""
+    first, last = con.execute(sql.DATA_SPAN_SQL).fetchone()
+    return analysis_date(first, last, as_of,
+                         "the store holds no exposures. Ingest logs first (`tubetrack ingest PATH`).")
 
 
 def load_inputs(con: duckdb.DuckDBPyConnection, as_of: datetime | None, params: HealthParams) -> dict:

@@ -313,6 +313,60 @@ def score_cases(
     return pd.DataFrame(rows), c
 
 
+@dataclass(frozen=True)
+class BacktestInputs:
+    """What every cut-off of a backtest reads: the store's aggregated history, read once."""
+
+    daily: pd.DataFrame
+    calibrations: pd.DataFrame
+    events: pd.DataFrame
+    tubes: pd.DataFrame
+    end: pd.Timestamp  # the day after the last exposure
+    cuts: list[pd.Timestamp]
+
+    def task(self, cut: pd.Timestamp, params: HealthParams) -> tuple:
+        """The arguments of one cut-off's analysis (:func:`_one_cut`)."""
+        return (self.daily, self.tubes, cut, params, self.calibrations, self.events)
+
+
+def backtest_inputs(
+    con: duckdb.DuckDBPyConnection, every_days: int, warmup_days: int
+) -> BacktestInputs:
+    """Read the store once and choose the cut-offs (clear errors when there is nothing to replay)."""
+    from tubetrack.errors import AnalysisError
+
+    daily = sql.load_daily(con)
+    if daily.empty:
+        raise AnalysisError(
+            "the store holds no exposures; ingest logs before running a backtest."
+        )
+    start = pd.Timestamp(pd.to_datetime(daily["day"]).min())
+    end = pd.Timestamp(pd.to_datetime(daily["day"]).max()) + pd.Timedelta(days=1)
+    cuts = cutoff_dates(start, end, every_days, warmup_days)
+    if not cuts:
+        raise AnalysisError(
+            f"history from {start:%Y-%m-%d} to {end:%Y-%m-%d} is too short for a backtest with "
+            f"{warmup_days} days of warm-up; load more history or lower the warm-up."
+        )
+    return BacktestInputs(daily, sql.load_calibrations(con), sql.load_events(con),
+                          sql.load_tubes(con, None), end, cuts)
+
+
+def score_parts(parts: list[pd.DataFrame], inputs: BacktestInputs, every_days: int) -> BacktestResult:
+    """Join the cut-offs' cases and score them (:func:`score_cases`)."""
+    from tubetrack.errors import AnalysisError
+
+    cases = (
+        pd.concat([x for x in parts if len(x)], ignore_index=True)
+        if any(len(x) for x in parts)
+        else pd.DataFrame()
+    )
+    if cases.empty:
+        raise AnalysisError("no tube was in service at any cut-off; nothing to score.")
+    summary, scored = score_cases(cases, inputs.tubes, inputs.end, every_days)
+    return BacktestResult(summary=summary, cases=scored)
+
+
 def run_backtest(
     con: duckdb.DuckDBPyConnection,
     every_days: int = 60,
@@ -335,39 +389,14 @@ def run_backtest(
     workers
         Processes over cut-offs (default ``params.workers``).
     """
-    from tubetrack.errors import AnalysisError
-
     p = params or HealthParams()
-    daily = sql.load_daily(con)
-    if daily.empty:
-        raise AnalysisError(
-            "the store holds no exposures; ingest logs before running a backtest."
-        )
-    calib = sql.load_calibrations(con)
-    events = sql.load_events(con)
-    tubes = sql.load_tubes(con, None)
-    start = pd.Timestamp(pd.to_datetime(daily["day"]).min())
-    end = pd.Timestamp(pd.to_datetime(daily["day"]).max()) + pd.Timedelta(days=1)
-    cuts = cutoff_dates(start, end, every_days, warmup_days)
-    if not cuts:
-        raise AnalysisError(
-            f"history from {start:%Y-%m-%d} to {end:%Y-%m-%d} is too short for a backtest with "
-            f"{warmup_days} days of warm-up; load more history or lower the warm-up."
-        )
+    inputs = backtest_inputs(con, every_days, warmup_days)
     inner = replace(p, workers=1)
-    tasks = [(daily, tubes, cut, inner, calib, events) for cut in cuts]
+    tasks = [inputs.task(cut, inner) for cut in inputs.cuts]
     n_workers = p.workers if workers is None else workers
     if n_workers <= 1 or len(tasks) < 2:
         parts = [_one_cut(t) for t in tasks]
     else:
         with ProcessPoolExecutor(max_workers=n_workers) as pool:
             parts = list(pool.map(_one_cut, tasks))
-    cases = (
-        pd.concat([x for x in parts if len(x)], ignore_index=True)
-        if any(len(x) for x in parts)
-        else pd.DataFrame()
-    )
-    if cases.empty:
-        raise AnalysisError("no tube was in service at any cut-off; nothing to score.")
-    summary, scored = score_cases(cases, tubes, end, every_days)
-    return BacktestResult(summary=summary, cases=scored)
+    return score_parts(parts, inputs, every_days)

@@ -197,7 +197,8 @@ def analyse_tube(
         Rows of ``sql.DAILY_SQL`` for this tube (all focal spots and stations).
     tube_meta
         tube_id, system_id, site, installed_at_utc, as_of (analysis date, a day boundary),
-        removal_reason (None while in service).
+        removal_reason (None while in service), removed (whether the tube was removed before the
+        analysis date; default: a removal reason is given).
     params
         :class:`HealthParams`.
     calibrations, events
@@ -230,8 +231,10 @@ def analyse_tube(
     # --- stopped logs: no exposure of this tube (any focal spot) in the last stale_after_days
     logged_end = pd.Timestamp(daily["day"].max()).normalize() + pd.Timedelta(days=1) if len(daily) else as_of
     unlogged_end_days = max(0.0, float((as_of - logged_end).days))
-    stale = tube_meta.get("removal_reason") is None and unlogged_end_days > p.stale_after_days
-    window_end = logged_end if stale else as_of  # the recent workload ends with the logs
+    removed = tube_meta.get("removed", tube_meta.get("removal_reason") is not None)
+    stale = not removed and unlogged_end_days >= p.stale_after_days
+    # the recent workload, the fit's minimum span and the signatures end with the logs
+    window_end = logged_end if stale else as_of
     for focal in sorted(daily["focal_spot"].dropna().unique()):
         dfs = daily[daily["focal_spot"] == focal]
         kvm = drift.fit_kv_model(dfs, focal, baseline_days=p.baseline_days)
@@ -355,7 +358,7 @@ def analyse_tube(
         # --- current segment, extended back to min_fit_days
         fit_from = None
         if last_break is not None and len(comb):
-            fit_from = min(last_break, as_of - pd.Timedelta(days=p.min_fit_days))
+            fit_from = min(last_break, window_end - pd.Timedelta(days=p.min_fit_days))
         fit = fit_wear(comb, wear, fit_from, x_pre, x_pre_sd, p.prior_k_sd, as_of,
                        prior_k_mean=p.prior_k_mean)
         # --- recent workload per calendar day
@@ -408,7 +411,7 @@ def analyse_tube(
                 dist = p.eol_diameter_loss - loss_now
                 wien_p50 = float(min(firstpassage.ig_ppf(0.5, mu, sig, dist), p.max_rul_days))
                 wien_p180 = float(firstpassage.ig_cdf(180.0, mu, sig, dist))
-        sig_info = tube_signatures(dfs, ev, as_of, p.signatures)
+        sig_info = tube_signatures(dfs, ev, window_end, p.signatures)
         # --- drop of the busiest station's current since its baseline (for the reason line)
         drop_pct, drop_ma = float("nan"), float("nan")
         if len(st):

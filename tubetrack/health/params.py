@@ -51,7 +51,7 @@ class HealthParams:
         Window of recent workload used for the projection [days]. It ends at the analysis date,
         or at the tube's newest logged day when its logs stopped (see ``stale_after_days``).
     stale_after_days
-        A tube in service with no logged exposure in this many days before the analysis date
+        A tube in service with no logged exposure in the last this-many days before the analysis date
         has *stopped logs* (an export that stopped arriving, or an analysis date past the data):
         the workload since its newest logged day is assumed to have gone on at its recent rate
         (with the workload's spread), the level is at least "observe" and the reason says so.

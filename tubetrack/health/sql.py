@@ -178,9 +178,9 @@ ORDER BY t.tube_id
 """
 
 #: Last exposure time before ``as_of`` (the effective analysis date when --as-of is not given).
-DATA_END_SQL = """
-SELECT max(timestamp_utc) FROM exposures
-WHERE CAST(? AS TIMESTAMP) IS NULL OR timestamp_utc < CAST(? AS TIMESTAMP)
+#: First and last exposure time: the span an analysis date is chosen from (both engines).
+DATA_SPAN_SQL = """
+SELECT min(timestamp_utc), max(timestamp_utc) FROM exposures
 """
 
 
