@@ -65,7 +65,10 @@ def test_chunked_pool_analysis_equals_the_serial_whole_fleet(mem_store, sim, loa
     serial = analyse_frames(sql.load_daily(mem_store), sql.load_tubes(mem_store), cut.to_pydatetime(),
                             HealthParams(workers=1), analysed_at=cut.to_pydatetime())
     monkeypatch.setattr(api, "CHUNK_TUBES", 2)
-    pooled = api.analyse_fleet(mem_store, cut.to_pydatetime(), HealthParams(workers=2, serial_below=0))
+    seen = []
+    pooled = api.analyse_fleet(mem_store, cut.to_pydatetime(), HealthParams(workers=2, serial_below=0),
+                               progress=lambda done, total: seen.append((done, total)))
+    assert seen == [(2, 5), (4, 5), (5, 5)]  # one call per chunk of two tubes
     assert set(serial.summary["tube_id"]) == {"P3", "P4"}
     for name, frame in serial.tables().items():
         other = pooled.tables()[name]

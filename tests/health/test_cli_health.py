@@ -100,3 +100,25 @@ def test_backtest_command_reports_metrics(db):
     metrics = {x["metric"] for x in rows}
     assert {"auc_180d", "brier_180d", "coverage_p10_p90", "alpha_lambda_accuracy",
             "prognostic_horizon_days", "false_alerts_per_tube_year", "nonfilament_failures"} <= metrics
+
+
+def test_long_analyses_report_progress(db):
+    from tubetrack.health.api import analyse_fleet
+    from tubetrack.health.backtest import run_backtest
+
+    con = store.connect(db, read_only=True)
+    try:
+        for workers in (1, 2):
+            calls = []
+            res = run_backtest(con, every_days=60, workers=workers,
+                               progress=lambda done, total, cut: calls.append((done, total, cut)))
+            n = len(calls)
+            assert n >= 3 and [c[0] for c in calls] == list(range(1, n + 1))
+            assert {c[1] for c in calls} == {n}
+            cuts = [c[2] for c in calls]
+            assert cuts == sorted(cuts) and set(res.cases["cut_off"]) <= set(cuts)
+        seen = []
+        analyse_fleet(con, progress=lambda done, total: seen.append((done, total)))
+        assert seen[-1] == (3, 3)  # every known tube, removed ones included
+    finally:
+        con.close()

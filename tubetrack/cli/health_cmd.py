@@ -68,7 +68,10 @@ def _analyse(db: Any, as_of: str | None, quiet: bool):
     con = store.connect(db)
     params = HealthParams()
     stderr("analysing tubes ...", quiet)
-    result = analyse_fleet(con, as_of=cut, params=params)
+    result = analyse_fleet(
+        con, as_of=cut, params=params,
+        progress=lambda done, total: stderr(f"  {done:,} of {total:,} tubes analysed", quiet),
+    )
     # one transaction for the whole set: an interrupted run leaves the previous results
     with store.capped_memory(con, HEALTH_WRITE_MEMORY):
         store.write_result_set(
@@ -354,7 +357,11 @@ def backtest_command(
     con = store.connect(db)
     started = store.utcnow()
     stderr(f"backtest: cut-offs every {every_days} days ...", quiet)
-    res = run_backtest(con, every_days=every_days, warmup_days=warmup_days)
+    res = run_backtest(
+        con, every_days=every_days, warmup_days=warmup_days,
+        progress=lambda done, total, cut: stderr(
+            f"  cut-off {cut:%Y-%m-%d} analysed ({done} of {total})", quiet),
+    )
     params = {"every_days": every_days, "warmup_days": warmup_days}
     store.write_result_set(
         con,

@@ -475,6 +475,7 @@ def analyse_fleet(
     con: duckdb.DuckDBPyConnection,
     as_of: datetime | None = None,
     params: HealthParams | None = None,
+    progress: Callable[[int, int], None] | None = None,
 ) -> HealthResult:
     """Analyse every tube in the store as of a date.
 
@@ -492,6 +493,8 @@ def analyse_fleet(
         known. Default: the day after the last exposure.
     params
         :class:`HealthParams` (defaults documented in docs/health.md).
+    progress
+        Called as ``progress(tubes_done, tubes_total)`` after each chunk of tubes is analysed.
 
     Returns
     -------
@@ -519,6 +522,8 @@ def analyse_fleet(
     if p.workers <= 1 or len(ids) < p.serial_below:
         for i in starts:
             results.extend(_analyse_compact(t) for t in chunk_tasks(i))
+            if progress is not None:
+                progress(min(i + CHUNK_TUBES, len(ids)), len(ids))
     else:
         with ProcessPoolExecutor(max_workers=p.workers) as pool:
             tasks = chunk_tasks(starts[0])
@@ -527,6 +532,8 @@ def analyse_fleet(
                                    chunksize=max(1, len(tasks) // (p.workers * 8)))
                 tasks = chunk_tasks(starts[k + 1]) if k + 1 < len(starts) else []
                 results.extend(running)
+                if progress is not None:
+                    progress(min(starts[k] + CHUNK_TUBES, len(ids)), len(ids))
 
             def mapper(function: Callable[[Any], Any], items: list[Any]) -> Any:
                 # the workers were forked before the results arrived: they hold none of them.

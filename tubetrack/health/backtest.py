@@ -43,6 +43,7 @@ Review 78 (1950) 1-3.
 
 from __future__ import annotations
 
+from collections.abc import Callable, Iterable
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING, Any
@@ -373,6 +374,7 @@ def run_backtest(
     params: HealthParams | None = None,
     warmup_days: int = 180,
     workers: int | None = None,
+    progress: Callable[[int, int, pd.Timestamp], None] | None = None,
 ) -> BacktestResult:
     """Replay the store's history at cut-offs every ``every_days`` and score the forecasts.
 
@@ -388,15 +390,26 @@ def run_backtest(
         First cut-off this long after the first exposure [days].
     workers
         Processes over cut-offs (default ``params.workers``).
+    progress
+        Called as ``progress(cut_offs_done, cut_offs_total, cut_off)`` as each cut-off's analysis
+        comes back (in date order).
     """
     p = params or HealthParams()
     inputs = backtest_inputs(con, every_days, warmup_days)
     inner = replace(p, workers=1)
     tasks = [inputs.task(cut, inner) for cut in inputs.cuts]
     n_workers = p.workers if workers is None else workers
+    parts: list[pd.DataFrame] = []
+
+    def collect(results: Iterable[pd.DataFrame]) -> None:
+        for cut, part in zip(inputs.cuts, results, strict=True):
+            parts.append(part)
+            if progress is not None:
+                progress(len(parts), len(tasks), cut)
+
     if n_workers <= 1 or len(tasks) < 2:
-        parts = [_one_cut(t) for t in tasks]
+        collect(_one_cut(t) for t in tasks)
     else:
         with ProcessPoolExecutor(max_workers=n_workers) as pool:
-            parts = list(pool.map(_one_cut, tasks))
+            collect(pool.map(_one_cut, tasks))
     return score_parts(parts, inputs, every_days)
