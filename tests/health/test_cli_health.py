@@ -109,9 +109,9 @@ def test_long_analyses_report_progress(db):
     con = store.connect(db, read_only=True)
     try:
         for workers in (1, 2):
-            calls = []
+            calls: list[tuple] = []
             res = run_backtest(con, every_days=60, workers=workers,
-                               progress=lambda done, total, cut: calls.append((done, total, cut)))
+                               progress=lambda *call, seen=calls: seen.append(call))
             n = len(calls)
             assert n >= 3 and [c[0] for c in calls] == list(range(1, n + 1))
             assert {c[1] for c in calls} == {n}
