@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pandas as pd
 
-from tubetrack.health.levels import LEVELS, assign_levels
+from tubetrack.health.levels import FORECAST_SIGNALS, LEVELS, assign_levels
 
 
 def _row(**kw):
@@ -39,6 +39,9 @@ def test_rules_and_reasons():
     assert list(s["health_rank"]) == [0, 1, 2, 3, 4, 2, 1, 4, 1]
     assert "no exposure logged in the 45 days before the analysis date" in s["reason"].iloc[8]
     assert "logs_stopped" in s["signals"].iloc[8] and "logs_stopped" not in s["signals"].iloc[0]
+    # every signal the levels add is one the backtest knows is not a non-filament signature
+    added = {x for v in s["signals"] for x in v.split(",") if x} - {"arc_rising"}
+    assert added == set(FORECAST_SIGNALS)
     assert "past the fleet's expected end of life while the filament is still intact" in s["reason"].iloc[7]
     assert "50 % chance of end of life within 40 days" in s["reason"].iloc[7]
     assert list(s["health_level"]) == [LEVELS[i] for i in s["health_rank"]]

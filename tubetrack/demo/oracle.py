@@ -111,8 +111,9 @@ def true_loss_at(diameter: pd.DataFrame, cut: pd.Timestamp) -> dict[tuple[str, s
 def state_with_loss(state: dict[str, Any], loss: float) -> dict[str, Any]:
     """A wear state whose present loss is ``loss`` exactly [1]; the wear rate is left as fitted.
 
-    The forecast draws the present loss as a + k (x_now + pre): with a = loss, x_now = 0, no
-    (negligible) variance of a and no pre-log uncertainty, every draw is ``loss`` while k keeps its variance.
+    The forecast draws the present loss as a + k (x_now + pre): with a = loss, x_now = 0, a
+    negligible variance of a and no unlogged-wear uncertainty, every draw is ``loss`` while k
+    keeps its variance.
     """
     cov = np.asarray(state["cov"], float)
     # a keeps a negligible variance (SD 1e-7 of diameter): the draws use a Cholesky factor

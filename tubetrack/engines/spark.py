@@ -307,7 +307,6 @@ def run_health_spark(
     -------
     tubetrack.health.HealthResult
     """
-
     from tubetrack.health import api
     from tubetrack.health import sql as hsql
     from tubetrack.health.params import HealthParams

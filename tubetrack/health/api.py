@@ -320,7 +320,7 @@ def _fleet_step(
         survivors=surviving_focal_losses(states, failed),
     )
     # removed = a removal date before the analysis date (the reason may be missing)
-    in_service = {tid for tid, m in metas.items() if not m.get("removed", m["removal_reason"] is not None)}
+    in_service = {tid for tid, m in metas.items() if not m["removed"]}
     # diameter series: total loss = loss since baseline + k x_b with the refitted k
     shift = {(st["tube_id"], st["focal_spot"]): 100.0 * st["k"] * st["x_b"] for st in states}
     summaries, served = [], []

@@ -53,7 +53,7 @@ import pandas as pd
 
 from tubetrack.health import sql
 from tubetrack.health.api import analyse_frames
-from tubetrack.health.levels import ALERT_RANK
+from tubetrack.health.levels import ALERT_RANK, FORECAST_SIGNALS
 from tubetrack.health.params import HealthParams
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -130,7 +130,7 @@ def tube_cases(summary: pd.DataFrame, cut: pd.Timestamp) -> pd.DataFrame:
             "signature_flag": (
                 g["signals"].apply(
                     lambda x: any(
-                        sig not in ("", "filament_wear", "short_history", "logs_stopped")
+                        sig not in ("", *FORECAST_SIGNALS)
                         for v in x
                         for sig in str(v).split(",")
                     )

@@ -30,6 +30,10 @@ LEVELS: tuple[str, ...] = ("sound", "observe", "prepare", "imminent", "past limi
 #: Rank from which a tube counts as an alert in the backtest (``prepare`` or worse).
 ALERT_RANK = 2
 
+#: Signals this module adds about the filament forecast itself (its wear, the data behind it);
+#: every other signal comes from a signature other than filament thinning.
+FORECAST_SIGNALS = ("filament_wear", "short_history", "logs_stopped")
+
 
 def assign_levels(summary: pd.DataFrame, threshold: float, min_history_days: float,
                   max_rul_days: float) -> pd.DataFrame:

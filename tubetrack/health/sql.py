@@ -177,7 +177,6 @@ WHERE CAST(? AS TIMESTAMP) IS NULL OR t.installed_at_utc < CAST(? AS TIMESTAMP)
 ORDER BY t.tube_id
 """
 
-#: Last exposure time before ``as_of`` (the effective analysis date when --as-of is not given).
 #: First and last exposure time: the span an analysis date is chosen from (both engines).
 DATA_SPAN_SQL = """
 SELECT min(timestamp_utc), max(timestamp_utc) FROM exposures
